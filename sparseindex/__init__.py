@@ -1,3 +1,21 @@
-"""sparseindex: a content-addressable store for sparse binary codes."""
+"""sparseindex: a content-addressable store for sparse binary codes.
+
+Store millions of wide, sparse binary codes; recall the stored codes that a
+noisy or partial query overlaps; and size the store from a false-hit target
+with the hypergeometric model.
+
+Examples
+--------
+>>> import sparseindex
+>>> store = sparseindex.Store(bits=256, threshold=3, seed=0)
+>>> ids = store.add([[1, 5, 9, 13], [2, 6, 10]])
+>>> store.query([1, 5, 9, 200]).ids.tolist()
+[0]
+"""
+
+from .codes import Codes
+from .store import BatchHits, Hits, Store
 
 __version__ = "0.1.0"
+
+__all__ = ["Codes", "Store", "Hits", "BatchHits", "__version__"]

@@ -1,0 +1,614 @@
+"""numba kernels: arrays in, arrays out, no validation.
+
+Every function here trusts its caller (the public wrappers in ``codes``,
+``bank`` and ``store``) for shapes, dtypes and index ranges: kernels run
+without bounds checks. Options come from :mod:`sparseindex._config`.
+
+Layout conventions
+------------------
+* Packed codes: ``uint64`` words, bit ``i`` in word ``i // 64`` at position
+  ``i % 64``; padding bits above ``bits`` are zero.
+* CSR index lists: ``indptr`` (int64, length rows + 1) and ``indices``
+  (int64), each row sorted ascending.
+* Postings: blocks over consecutive detector ranges
+  ``block_lo[k]..block_hi[k]-1`` (never more than ``block_span`` = 65,536
+  detectors). ``post`` holds ``uint16`` offsets ``detector - block_lo[k]``;
+  ``block_indptr`` (int64, shape (blocks, bits + 1)) holds *absolute*
+  positions in ``post``: the postings of bit ``b`` in block ``k`` are
+  ``post[block_indptr[k, b]:block_indptr[k, b + 1]]``, ascending. Detector
+  ``d`` belongs to row ``d // detectors``.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import prange
+
+from ._config import DISABLE_JIT, inline_kernel, kernel, parallel_kernel
+
+# ---------------------------------------------------------------------------
+# bit tricks and a counter-based random stream
+# ---------------------------------------------------------------------------
+
+_GOLDEN = 0x9E3779B97F4A7C15
+_MIX1 = 0xBF58476D1CE4E5B9
+_MIX2 = 0x94D049BB133111EB
+_MASK64 = 0xFFFFFFFFFFFFFFFF
+
+if DISABLE_JIT:
+    # Plain-Python twins of the intrinsics below: same results, no numpy
+    # scalar overflow warnings.
+
+    def popcount64(x):
+        return int(x).bit_count()
+
+    def _mix64(z):
+        """splitmix64 finaliser (Steele, Lea & Flood, OOPSLA 2014)."""
+        z = int(z) & _MASK64
+        z = ((z ^ (z >> 30)) * _MIX1) & _MASK64
+        z = ((z ^ (z >> 27)) * _MIX2) & _MASK64
+        return np.uint64(z ^ (z >> 31))
+
+    def _detector_state(seed, code_id, j):
+        base = int(_mix64(int(seed) ^ int(_mix64(int(code_id)))))
+        return np.uint64(int(_mix64((base + (int(j) + 1) * _GOLDEN) & _MASK64)))
+
+    def _rng_next(state):
+        state = (int(state) + _GOLDEN) & _MASK64
+        return np.uint64(state), _mix64(state)
+
+else:
+    from numba import types
+    from numba.extending import intrinsic
+
+    @intrinsic
+    def _ctpop_u64(typingctx, x):
+        sig = types.uint64(types.uint64)
+
+        def codegen(context, builder, signature, args):
+            return builder.ctpop(args[0])
+
+        return sig, codegen
+
+    @inline_kernel
+    def popcount64(x):
+        """Population count of one uint64 word (LLVM ``ctpop``)."""
+        return _ctpop_u64(x)
+
+    @inline_kernel
+    def _mix64(z):
+        """splitmix64 finaliser (Steele, Lea & Flood, OOPSLA 2014)."""
+        z = np.uint64(z)
+        z = (z ^ (z >> np.uint64(30))) * np.uint64(_MIX1)
+        z = (z ^ (z >> np.uint64(27))) * np.uint64(_MIX2)
+        return z ^ (z >> np.uint64(31))
+
+    @inline_kernel
+    def _detector_state(seed, code_id, j):
+        base = _mix64(np.uint64(seed) ^ _mix64(np.uint64(code_id)))
+        return _mix64(base + (np.uint64(j) + np.uint64(1)) * np.uint64(_GOLDEN))
+
+    @inline_kernel
+    def _rng_next(state):
+        state = state + np.uint64(_GOLDEN)
+        return state, _mix64(state)
+
+
+@inline_kernel
+def _row_overlap(a, b):
+    total = 0
+    for w in range(a.shape[0]):
+        total += popcount64(a[w] & b[w])
+    return total
+
+
+# ---------------------------------------------------------------------------
+# packing and unpacking
+# ---------------------------------------------------------------------------
+
+
+@kernel
+def pack_indices(indptr, indices, n_words):
+    """CSR index lists -> packed uint64 rows (indices already range-checked).
+
+    Returns ``(words, dup_row, dup_value)``: ``dup_row`` is the first row
+    that sets one bit twice, or -1.
+    """
+    rows = indptr.shape[0] - 1
+    words = np.zeros((rows, n_words), dtype=np.uint64)
+    for r in range(rows):
+        for p in range(indptr[r], indptr[r + 1]):
+            i = indices[p]
+            bit = np.uint64(1) << np.uint64(i & 63)
+            if words[r, i >> 6] & bit:
+                return words, r, i
+            words[r, i >> 6] |= bit
+    return words, -1, -1
+
+
+@kernel
+def row_weights(words):
+    """Set-bit count of every packed row."""
+    rows = words.shape[0]
+    out = np.empty(rows, dtype=np.int64)
+    for r in range(rows):
+        out[r] = _row_overlap(words[r], words[r])
+    return out
+
+
+@kernel
+def unpack_indices(words, weights):
+    """Packed rows -> CSR index lists (``weights`` are the rows' popcounts)."""
+    rows = words.shape[0]
+    indptr = np.zeros(rows + 1, dtype=np.int64)
+    for r in range(rows):
+        indptr[r + 1] = indptr[r] + weights[r]
+    indices = np.empty(indptr[rows], dtype=np.int64)
+    for r in range(rows):
+        p = indptr[r]
+        for w in range(words.shape[1]):
+            x = words[r, w]
+            while x != np.uint64(0):
+                low = x & (~x + np.uint64(1))
+                indices[p] = w * 64 + np.int64(popcount64(low - np.uint64(1)))
+                p += 1
+                x = x ^ low
+    return indptr, indices
+
+
+@kernel
+def random_words(rows, bits, active, seed):
+    """``rows`` random packed codes of exactly ``active`` distinct set bits.
+
+    Floyd's algorithm (Bentley & Floyd, "A sample of brilliance", CACM
+    1987) with a splitmix64 stream per row keyed on ``(seed, row)``: uniform
+    over all codes of that weight.
+    """
+    n_words = (bits + 63) // 64
+    out = np.zeros((rows, n_words), dtype=np.uint64)
+    for r in range(rows):
+        state = _detector_state(seed, r, 0)
+        for j in range(bits - active, bits):
+            state, x = _rng_next(state)
+            v = np.int64(x % np.uint64(j + 1))
+            bit = np.uint64(1) << np.uint64(v & 63)
+            if out[r, v >> 6] & bit:
+                v = j
+                bit = np.uint64(1) << np.uint64(v & 63)
+            out[r, v >> 6] |= bit
+    return out
+
+
+# ---------------------------------------------------------------------------
+# detector sampling and postings
+# ---------------------------------------------------------------------------
+
+
+@kernel
+def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
+    """Sample each code's detector bits.
+
+    Detector ``j`` of the code with id ``c`` draws ``min(segment, weight)``
+    of the code's set bits by a partial Fisher-Yates shuffle driven by a
+    splitmix64 stream keyed on ``(seed, c, j)`` only, so samples do not
+    depend on batching or on where the code is stored. ``segment <= 0``
+    means every set bit. Returns ``(det_indptr, det_bits)`` over
+    ``rows * detectors`` detectors in row-major order, each sample sorted.
+    """
+    rows = indptr.shape[0] - 1
+    n_det = rows * detectors
+    det_indptr = np.zeros(n_det + 1, dtype=np.int64)
+    for r in range(rows):
+        w = indptr[r + 1] - indptr[r]
+        take = w if (segment <= 0 or segment >= w) else segment
+        for j in range(detectors):
+            d = r * detectors + j
+            det_indptr[d + 1] = det_indptr[d] + take
+    det_bits = np.empty(det_indptr[n_det], dtype=np.int64)
+    scratch = np.empty(0, dtype=np.int64)
+    for r in range(rows):
+        lo = indptr[r]
+        w = indptr[r + 1] - lo
+        for j in range(detectors):
+            d = r * detectors + j
+            out_lo = det_indptr[d]
+            take = det_indptr[d + 1] - out_lo
+            if take == w:
+                for t in range(w):
+                    det_bits[out_lo + t] = indices[lo + t]
+                continue
+            if scratch.shape[0] < w:
+                scratch = np.empty(w, dtype=np.int64)
+            for t in range(w):
+                scratch[t] = indices[lo + t]
+            state = _detector_state(seed, code_ids[r], j)
+            for t in range(take):
+                state, x = _rng_next(state)
+                k = t + np.int64(x % np.uint64(w - t))
+                tmp = scratch[t]
+                scratch[t] = scratch[k]
+                scratch[k] = tmp
+            chosen = np.sort(scratch[:take])
+            for t in range(take):
+                det_bits[out_lo + t] = chosen[t]
+    return det_indptr, det_bits
+
+
+@kernel
+def build_blocks(det_indptr, det_bits, first_detector, bits, block_span, offset):
+    """Counting sort of (bit, detector) pairs into postings blocks.
+
+    Detector ``k`` of the input gets id ``first_detector + k``. Block
+    boundaries fall on multiples of ``block_span`` in the global detector id
+    space, so a block never spans more than ``block_span`` detectors and its
+    postings fit ``uint16`` offsets from the block's first detector. Returns
+    ``(block_indptr, block_lo, block_hi, post)``: ``block_indptr`` holds
+    positions in ``post`` plus ``offset``; each bit's offsets ascend.
+    """
+    n_det = det_indptr.shape[0] - 1
+    last = first_detector + n_det
+    first_block = first_detector // block_span
+    n_blocks = 0 if n_det == 0 else (last - 1) // block_span - first_block + 1
+    block_lo = np.empty(n_blocks, dtype=np.int64)
+    block_hi = np.empty(n_blocks, dtype=np.int64)
+    for k in range(n_blocks):
+        block_lo[k] = max(first_detector, (first_block + k) * block_span)
+        block_hi[k] = min(last, (first_block + k + 1) * block_span)
+    block_indptr = np.zeros((n_blocks, bits + 1), dtype=np.int64)
+    post = np.empty(det_bits.shape[0], dtype=np.uint16)
+    counts = np.zeros(bits, dtype=np.int64)
+    cursor = np.empty(bits, dtype=np.int64)
+    pos = 0
+    for k in range(n_blocks):
+        d0 = block_lo[k] - first_detector
+        d1 = block_hi[k] - first_detector
+        counts[:] = 0
+        for p in range(det_indptr[d0], det_indptr[d1]):
+            counts[det_bits[p]] += 1
+        for b in range(bits):
+            block_indptr[k, b] = pos + offset
+            cursor[b] = pos
+            pos += counts[b]
+        block_indptr[k, bits] = pos + offset
+        for d in range(d0, d1):
+            o = np.uint16(d - d0)
+            for p in range(det_indptr[d], det_indptr[d + 1]):
+                b = det_bits[p]
+                post[cursor[b]] = o
+                cursor[b] += 1
+    return block_indptr, block_lo, block_hi, post
+
+
+@inline_kernel
+def _row_bits(words, r, out):
+    """Set-bit indices of packed row ``r`` into ``out``; returns the count."""
+    n = 0
+    for w in range(words.shape[1]):
+        x = words[r, w]
+        while x != np.uint64(0):
+            low = x & (~x + np.uint64(1))
+            out[n] = w * 64 + np.int64(popcount64(low - np.uint64(1)))
+            n += 1
+            x = x ^ low
+    return n
+
+
+@inline_kernel
+def _sample_into(row_bits, w, take, seed, code_id, j, out):
+    """Detector ``j``'s sample of a code (see ``sample_detectors``) into ``out[:take]``."""
+    if take == w:
+        for t in range(w):
+            out[t] = row_bits[t]
+        return
+    for t in range(w):
+        out[t] = row_bits[t]
+    state = _detector_state(seed, code_id, j)
+    for t in range(take):
+        state, x = _rng_next(state)
+        k = t + np.int64(x % np.uint64(w - t))
+        tmp = out[t]
+        out[t] = out[k]
+        out[k] = tmp
+
+
+@kernel
+def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed, bits, block_span, offset):
+    """Sample and index the detectors of packed rows in one pass, no temporaries.
+
+    Equivalent to ``sample_detectors`` followed by ``build_blocks`` (the
+    same samples, the same blocks) but reads the packed rows twice (count,
+    then fill) instead of materialising every sample: the batch's memory is
+    touched once more, not four times. Row ``i`` of ``words`` becomes store
+    row ``first_row + i``. Returns ``(block_indptr, block_lo, block_hi,
+    post, max_sample)``.
+    """
+    rows = words.shape[0]
+    first_detector = first_row * detectors
+    n_det = rows * detectors
+    last = first_detector + n_det
+    first_block = first_detector // block_span
+    n_blocks = 0 if n_det == 0 else (last - 1) // block_span - first_block + 1
+    block_lo = np.empty(n_blocks, dtype=np.int64)
+    block_hi = np.empty(n_blocks, dtype=np.int64)
+    for k in range(n_blocks):
+        block_lo[k] = max(first_detector, (first_block + k) * block_span)
+        block_hi[k] = min(last, (first_block + k + 1) * block_span)
+    counts = np.zeros((n_blocks, bits), dtype=np.int64)
+    row_bits = np.empty(bits, dtype=np.int64)
+    sample = np.empty(bits, dtype=np.int64)
+    max_sample = 0
+    total = 0
+    for r in range(rows):
+        w = _row_bits(words, r, row_bits)
+        take = w if (segment <= 0 or segment >= w) else segment
+        if take > max_sample:
+            max_sample = take
+        for j in range(detectors):
+            d = first_detector + r * detectors + j
+            k = d // block_span - first_block
+            _sample_into(row_bits, w, take, seed, code_ids[r], j, sample)
+            for t in range(take):
+                counts[k, sample[t]] += 1
+            total += take
+    block_indptr = np.zeros((n_blocks, bits + 1), dtype=np.int64)
+    cursor = np.empty((n_blocks, bits), dtype=np.int64)
+    pos = 0
+    for k in range(n_blocks):
+        for b in range(bits):
+            block_indptr[k, b] = pos + offset
+            cursor[k, b] = pos
+            pos += counts[k, b]
+        block_indptr[k, bits] = pos + offset
+    post = np.empty(total, dtype=np.uint16)
+    for r in range(rows):
+        w = _row_bits(words, r, row_bits)
+        take = w if (segment <= 0 or segment >= w) else segment
+        for j in range(detectors):
+            d = first_detector + r * detectors + j
+            k = d // block_span - first_block
+            o = np.uint16(d - block_lo[k])
+            _sample_into(row_bits, w, take, seed, code_ids[r], j, sample)
+            for t in range(take):
+                b = sample[t]
+                post[cursor[k, b]] = o
+                cursor[k, b] += 1
+    return block_indptr, block_lo, block_hi, post, max_sample
+
+
+@kernel
+def merge_blocks(post, block_indptr, block_lo, first_block, last_block, out_offset):
+    """Merge blocks ``first_block..last_block-1`` (consecutive detector ranges).
+
+    Offsets are rebased on the first block's ``lo``; concatenating each
+    bit's lists block after block keeps them ascending. Returns the merged
+    ``(indptr, post)`` with ``indptr`` shifted by ``out_offset``.
+    """
+    bits = block_indptr.shape[1] - 1
+    total = 0
+    for k in range(first_block, last_block):
+        total += block_indptr[k, bits] - block_indptr[k, 0]
+    out = np.empty(total, dtype=np.uint16)
+    indptr = np.empty(bits + 1, dtype=np.int64)
+    base = block_lo[first_block]
+    p = 0
+    for b in range(bits):
+        indptr[b] = p + out_offset
+        for k in range(first_block, last_block):
+            shift = block_lo[k] - base
+            for q in range(block_indptr[k, b], block_indptr[k, b + 1]):
+                out[p] = np.uint16(np.int64(post[q]) + shift)
+                p += 1
+    indptr[bits] = p + out_offset
+    return indptr, out
+
+
+# ---------------------------------------------------------------------------
+# queries
+# ---------------------------------------------------------------------------
+
+
+@inline_kernel
+def _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired):
+    """Count each detector's sampled bits present in the query, block by block.
+
+    A block's counters (at most ``block_span`` of them) stay in cache while
+    its postings stream past. A detector is recorded the moment its counter
+    reaches ``threshold``, so it appears once. At most ``fired.shape[0]``
+    are recorded; the true count is returned so that the caller can retry
+    with room for all. ``counters`` are zero again on exit.
+    """
+    n_fired = 0
+    room = fired.shape[0]
+    for k in range(block_indptr.shape[0]):
+        lo = block_lo[k]
+        for t in range(q_bits.shape[0]):
+            b = q_bits[t]
+            for p in range(block_indptr[k, b], block_indptr[k, b + 1]):
+                d = post[p]
+                c = counters[d] + 1
+                counters[d] = c
+                if c == threshold:
+                    if n_fired < room:
+                        fired[n_fired] = lo + d
+                    n_fired += 1
+        counters[: block_hi[k] - lo] = 0
+    return n_fired
+
+
+@inline_kernel
+def _fired_rows(fired, n_fired, detectors):
+    """Distinct rows (ascending) owning the fired detectors."""
+    rows = np.sort(fired[:n_fired] // detectors)
+    n = 0
+    for i in range(rows.shape[0]):
+        if i == 0 or rows[i] != rows[i - 1]:
+            rows[n] = rows[i]
+            n += 1
+    return rows[:n]
+
+
+@inline_kernel
+def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap, fired):
+    """Rows hit by one query with their overlaps; a larger ``fired`` if needed."""
+    n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
+    if n_fired > fired.shape[0]:
+        fired = np.empty(2 * n_fired, dtype=np.int64)
+        n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
+    rows = _fired_rows(fired, n_fired, detectors)
+    out_rows = np.empty(rows.shape[0], dtype=np.int64)
+    out_ov = np.empty(rows.shape[0], dtype=np.int64)
+    n = 0
+    for i in range(rows.shape[0]):
+        r = rows[i]
+        if removed[r]:
+            continue
+        ov = _row_overlap(words[r], q_words)
+        if ov >= min_overlap:
+            out_rows[n] = r
+            out_ov[n] = ov
+            n += 1
+    return out_rows[:n], out_ov[:n], fired
+
+
+@kernel
+def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap):
+    """One query: rows with a firing detector and overlap >= min_overlap.
+
+    ``counters`` (at least one block span long) must be zero on entry and
+    are zero again on exit. Returns ``(rows, overlaps)``, rows ascending.
+    """
+    fired = np.empty(256, dtype=np.int64)
+    rows, overlaps, fired = _answer(
+        q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap, fired
+    )
+    return rows, overlaps
+
+
+@parallel_kernel
+def query_batch(
+    q_indptr,
+    q_bits,
+    q_words,
+    post,
+    block_indptr,
+    block_lo,
+    block_hi,
+    counter_like,
+    threshold,
+    detectors,
+    removed,
+    words,
+    min_overlap,
+    chunk_lo,
+    chunk_hi,
+    slab_lo,
+    slab_hi,
+    out_rows,
+    out_ov,
+    out_count,
+):
+    """Many queries in parallel, one chunk of queries per task.
+
+    Chunk ``c`` answers queries ``chunk_lo[c]..chunk_hi[c]-1`` in order and
+    writes their hits into ``out_rows/out_ov[slab_lo[c]:slab_hi[c]]``,
+    ``out_count[i]`` hits for query ``i``. A chunk whose slab fills up stops
+    early; the returned ``done[c]`` is the first query it did not answer, so
+    the caller can resume it with a larger slab. Each task owns a counter
+    array shaped and typed like ``counter_like``.
+    """
+    n_chunks = chunk_lo.shape[0]
+    done = np.empty(n_chunks, dtype=np.int64)
+    for c in prange(n_chunks):
+        counters = np.zeros(counter_like.shape[0], dtype=counter_like.dtype)
+        fired = np.empty(256, dtype=np.int64)
+        pos = slab_lo[c]
+        i = chunk_lo[c]
+        while i < chunk_hi[c]:
+            rows, overlaps, fired = _answer(
+                q_bits[q_indptr[i] : q_indptr[i + 1]],
+                q_words[i],
+                post,
+                block_indptr,
+                block_lo,
+                block_hi,
+                counters,
+                threshold,
+                detectors,
+                removed,
+                words,
+                min_overlap,
+                fired,
+            )
+            n = rows.shape[0]
+            if pos + n > slab_hi[c]:
+                break
+            out_rows[pos : pos + n] = rows
+            out_ov[pos : pos + n] = overlaps
+            out_count[i] = n
+            pos += n
+            i += 1
+        done[c] = i
+    return done
+
+
+@parallel_kernel
+def overlaps_with_all(q_words, words, n_rows):
+    """Exact overlap of one packed query with each of the first n_rows rows."""
+    out = np.empty(n_rows, dtype=np.int64)
+    for r in prange(n_rows):
+        out[r] = _row_overlap(words[r], q_words)
+    return out
+
+
+@kernel
+def overlaps_with_rows(q_words, words, rows):
+    """Exact overlap of one packed query with the given rows."""
+    out = np.empty(rows.shape[0], dtype=np.int64)
+    for t in range(rows.shape[0]):
+        out[t] = _row_overlap(words[rows[t]], q_words)
+    return out
+
+
+@kernel
+def top_k(overlaps, removed, k, max_overlap):
+    """Rows of the k largest overlaps among live rows, ties to the lower row.
+
+    A histogram over overlap values finds the cut in O(rows + max_overlap);
+    the result is ordered by overlap descending, then row ascending.
+    """
+    n = overlaps.shape[0]
+    hist = np.zeros(max_overlap + 2, dtype=np.int64)
+    live = 0
+    for r in range(n):
+        if not removed[r]:
+            hist[overlaps[r]] += 1
+            live += 1
+    if k > live:
+        k = live
+    # cut: smallest value v such that count(overlap >= v) >= k
+    above = 0
+    cut = max_overlap + 1
+    while cut > 0 and above + hist[cut - 1] <= k and above < k:
+        above += hist[cut - 1]
+        cut -= 1
+    # rows with overlap >= cut are all taken; take (k - above) rows at cut - 1
+    take_at = k - above
+    tie_value = cut - 1
+    per_value = np.zeros(max_overlap + 2, dtype=np.int64)
+    start = np.zeros(max_overlap + 2, dtype=np.int64)
+    acc = 0
+    for v in range(max_overlap + 1, -1, -1):
+        start[v] = acc
+        if v >= cut:
+            acc += hist[v]
+        elif v == tie_value:
+            acc += take_at
+    out = np.empty(k, dtype=np.int64)
+    for r in range(n):
+        if removed[r]:
+            continue
+        v = overlaps[r]
+        if v >= cut or (v == tie_value and per_value[v] < take_at):
+            out[start[v] + per_value[v]] = r
+            per_value[v] += 1
+    return out

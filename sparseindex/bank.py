@@ -1,0 +1,378 @@
+"""Detector banks: sampling, postings, threshold scans and compaction.
+
+Every stored code (a *row* here) owns ``detectors`` detectors with ids
+``row * detectors + j``. A detector samples ``segment`` of its code's set
+bits (all of them when ``segment`` is None or the code is lighter) and fires
+when at least ``threshold`` of them are set in a query.
+
+Postings map each bit to the detectors that sampled it. They live in
+*blocks*, each over a run of consecutive detector ids inside one *span* of
+``block_span`` = 65,536 ids, stored as ``uint16`` offsets from the block's
+first detector (2 bytes a posting). A query counts block by block, so its
+counters are one span long and stay in cache however large the store grows.
+Each ``add`` appends new blocks (cost proportional to the batch, nothing is
+rebuilt); a full span is merged into one block, and inside the span still
+filling the newest block merges into the one before whenever it is at least
+half its size, so every posting is rewritten O(log span) times at most.
+``compact`` rebuilds the postings of the surviving rows from scratch.
+
+This layer knows nothing of ids, codes or the store; it sees rows only.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from . import _kernels
+from ._config import PARALLEL_LOCK, thread_count
+
+#: Detector ids are int32 in results and int64 in kernels; keep them int32-sized.
+MAX_DETECTORS_TOTAL = 2**31 - 1
+
+#: Detectors per postings block: offsets within a block fit uint16, and a
+#: block's counters (64 KiB of uint8) stay in the second-level cache.
+BLOCK_SPAN = 2**16
+
+#: Codes sampled per kernel call in ``append`` (bounds the temporaries).
+APPEND_CHUNK_ROWS = 2**18
+
+
+class DetectorBank:
+    """Postings of every detector of every row, and the scans over them.
+
+    Parameters
+    ----------
+    bits : int
+        Width of the codes.
+    threshold, segment, detectors, seed
+        As in :class:`sparseindex.Store` (validated there).
+    block_span : int
+        Detectors per postings block (at most 65,536; smaller in tests to
+        exercise many blocks).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> bank = DetectorBank(bits=16, threshold=2, segment=None, detectors=1, seed=0)
+    >>> words = np.array([[(1 << 1) | (1 << 4) | (1 << 9)]], dtype=np.uint64)
+    >>> bank.append(words, np.array([0]))
+    >>> bank.postings_count, bank.rows
+    (3, 1)
+    """
+
+    def __init__(self, bits, threshold, segment, detectors, seed, block_span=BLOCK_SPAN):
+        if not 1 <= block_span <= 2**16:
+            raise ValueError(f"block_span={block_span} must be in 1..65536")
+        self.bits = bits
+        self.threshold = threshold
+        self.segment = segment
+        self.detectors = detectors
+        self.seed = seed
+        self.block_span = block_span
+        self.rows = 0
+        self._post = np.zeros(0, dtype=np.uint16)  # buffer; capacity >= used
+        self._used = 0
+        self._block_indptr = np.zeros((0, bits + 1), dtype=np.int64)
+        self._block_lo = np.zeros(0, dtype=np.int64)
+        self._block_hi = np.zeros(0, dtype=np.int64)
+        self._max_sample = 0  # largest sample of any detector (sizes the counters)
+
+    # -- building --------------------------------------------------------
+
+    def sample(self, indptr: np.ndarray, indices: np.ndarray, code_ids: np.ndarray):
+        """Detector samples for a batch of codes (kernel ``sample_detectors``).
+
+        Returns ``(det_indptr, det_bits)`` in row-major detector order. Pure:
+        the bank is not changed.
+        """
+        segment = -1 if self.segment is None else self.segment
+        return _kernels.sample_detectors(
+            indptr, indices, np.asarray(code_ids, dtype=np.int64), self.detectors, segment, np.uint64(self.seed)
+        )
+
+    def append(self, words: np.ndarray, code_ids: np.ndarray) -> None:
+        """Sample and index the detectors of new rows (packed words + their ids).
+
+        Wraps kernel ``build_blocks_from_words``, in chunks of
+        ``APPEND_CHUNK_ROWS`` rows. Everything is computed and allocated
+        before the bank changes, so an error (MemoryError included) leaves
+        it as it was. O(batch postings).
+        """
+        rows = words.shape[0]
+        if (self.rows + rows) * self.detectors > MAX_DETECTORS_TOTAL:
+            raise OverflowError(
+                f"a store holds at most {MAX_DETECTORS_TOTAL // self.detectors:,} codes with "
+                f"detectors={self.detectors}; adding {rows:,} to {self.rows:,} exceeds it"
+            )
+        pieces = []
+        offset = self._used
+        max_sample = self._max_sample
+        segment = -1 if self.segment is None else self.segment
+        code_ids = np.asarray(code_ids, dtype=np.int64)
+        for r0 in range(0, rows, APPEND_CHUNK_ROWS):
+            r1 = min(rows, r0 + APPEND_CHUNK_ROWS)
+            *piece, chunk_max = _kernels.build_blocks_from_words(
+                words[r0:r1],
+                code_ids[r0:r1],
+                self.rows + r0,
+                self.detectors,
+                segment,
+                np.uint64(self.seed),
+                self.bits,
+                self.block_span,
+                offset,
+            )
+            offset += piece[3].shape[0]
+            pieces.append(piece)
+            max_sample = max(max_sample, int(chunk_max))
+        need = offset
+        buffer = self._post
+        if need > buffer.shape[0]:
+            # exact size for the first batch (a store built in one add wastes
+            # nothing); grow by 1.5x after that
+            capacity = need if self._used == 0 else max(need, int(buffer.shape[0] * 1.5))
+            buffer = np.empty(capacity, dtype=np.uint16)
+            buffer[: self._used] = self._post[: self._used]
+        block_indptr = np.concatenate([self._block_indptr] + [p[0] for p in pieces])
+        block_lo = np.concatenate([self._block_lo] + [p[1] for p in pieces])
+        block_hi = np.concatenate([self._block_hi] + [p[2] for p in pieces])
+        pos = self._used
+        for p in pieces:
+            buffer[pos : pos + p[3].shape[0]] = p[3]
+            pos += p[3].shape[0]
+        # commit
+        self._post = buffer
+        self._block_indptr, self._block_lo, self._block_hi = block_indptr, block_lo, block_hi
+        self._used = need
+        self.rows += rows
+        self._max_sample = max_sample
+        self._merge_blocks()
+
+    def _merge_blocks(self) -> None:
+        """Keep few blocks: one per full span, O(log) in the span still filling.
+
+        Blocks of one span that is no longer the last (or is complete) merge
+        into one; in the last span the newest block merges into the one
+        before while it holds at least half as many postings, so that many
+        small adds rewrite each posting O(log) times in total.
+        """
+        span = self.block_span
+        while True:
+            n = self._block_lo.shape[0]
+            if n < 2:
+                return
+            group = self._block_lo // span
+            same_as_next = np.flatnonzero(group[:-1] == group[1:])
+            last_group_start = int(np.flatnonzero(group != group[-1])[-1] + 1) if np.any(group != group[-1]) else 0
+            split = same_as_next[same_as_next < last_group_start - 1] if last_group_start else same_as_next[:0]
+            if split.size:
+                # the last earlier span that is split: merge all its blocks
+                g = group[split[-1]]
+                members = np.flatnonzero(group == g)
+                self._merge_range(int(members[0]), int(members[-1]) + 1)
+                continue
+            k = last_group_start
+            if n - k < 2:
+                return
+            if self._block_hi[n - 1] - self._block_lo[k] == span:
+                self._merge_range(k, n)
+                continue
+            sizes = self._block_indptr[:, -1] - self._block_indptr[:, 0]
+            if 2 * sizes[n - 1] < sizes[n - 2]:
+                return
+            self._merge_range(n - 2, n)
+
+    def _merge_range(self, first: int, last: int) -> None:
+        start = int(self._block_indptr[first, 0])
+        indptr, merged = _kernels.merge_blocks(
+            self._post, self._block_indptr, self._block_lo, first, last, start
+        )
+        self._post[start : start + merged.shape[0]] = merged
+        self._block_indptr = np.concatenate([self._block_indptr[:first], indptr[None, :], self._block_indptr[last:]])
+        self._block_lo = np.concatenate([self._block_lo[: first + 1], self._block_lo[last:]])
+        self._block_hi = np.concatenate([self._block_hi[:first], self._block_hi[last - 1 : last], self._block_hi[last:]])
+
+    def rebuilt(self, words: np.ndarray, code_ids: np.ndarray) -> "DetectorBank":
+        """A new bank holding exactly these rows (used by compaction)."""
+        fresh = DetectorBank(self.bits, self.threshold, self.segment, self.detectors, self.seed, self.block_span)
+        if words.shape[0]:
+            fresh.append(words, code_ids)
+        return fresh
+
+    # -- scanning --------------------------------------------------------
+
+    @property
+    def postings_count(self) -> int:
+        """Postings held, including those of removed rows not yet compacted."""
+        return self._used
+
+    @property
+    def block_count(self) -> int:
+        return self._block_lo.shape[0]
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes held by the postings buffer and block tables."""
+        return self._post.nbytes + self._block_indptr.nbytes + self._block_lo.nbytes + self._block_hi.nbytes
+
+    def counter_dtype(self):
+        top = max(self._max_sample, self.threshold)
+        return np.uint8 if top < 2**8 else np.uint16 if top < 2**16 else np.int32
+
+    def new_counters(self) -> np.ndarray:
+        """A zeroed counter array for one block, of the narrowest safe dtype."""
+        return np.zeros(self.block_span, dtype=self.counter_dtype())
+
+    def counters_fit(self, counters: np.ndarray) -> bool:
+        return counters.dtype == self.counter_dtype() and counters.shape[0] >= self.block_span
+
+    def scan_one(self, q_bits, q_words, words, removed, min_overlap, counters):
+        """Rows hit by one query, with their exact overlaps (kernel ``query_one``).
+
+        ``counters`` comes from :meth:`new_counters` and is returned zeroed.
+        O(postings of the query's bits + hits * words per code).
+        """
+        return _kernels.query_one(
+            q_bits,
+            q_words,
+            self._post,
+            self._block_indptr,
+            self._block_lo,
+            self._block_hi,
+            counters,
+            self.threshold,
+            self.detectors,
+            removed,
+            words,
+            min_overlap,
+        )
+
+    def scan_many(self, q_indptr, q_bits, q_words, words, removed, min_overlap):
+        """Rows hit by each of many queries, in parallel (kernel ``query_batch``).
+
+        Returns ``(counts, rows, overlaps)``: ``counts[i]`` hits for query
+        ``i``, laid end to end in query order, rows ascending within a query.
+        """
+        n_queries = q_indptr.shape[0] - 1
+        if n_queries == 0:
+            empty = np.zeros(0, dtype=np.int64)
+            return empty, empty, empty
+        counter_like = self.new_counters()
+        tasks = max(1, min(n_queries, 4 * thread_count()))
+        pending = [(0, n_queries)]
+        per_query = 8  # slab room per query; grows when a slab fills up
+        counts = np.zeros(n_queries, dtype=np.int64)
+        pieces: list[tuple[int, np.ndarray, np.ndarray]] = []
+        while pending:
+            lo_list, hi_list = _split_ranges(pending, tasks)
+            lo = np.array(lo_list, dtype=np.int64)
+            hi = np.array(hi_list, dtype=np.int64)
+            room = (hi - lo) * per_query + 64
+            slab_hi = np.cumsum(room)
+            slab_lo = slab_hi - room
+            out_rows = np.empty(int(slab_hi[-1]), dtype=np.int64)
+            out_ov = np.empty(int(slab_hi[-1]), dtype=np.int64)
+            with PARALLEL_LOCK:
+                done = _kernels.query_batch(
+                    q_indptr,
+                    q_bits,
+                    q_words,
+                    self._post,
+                    self._block_indptr,
+                    self._block_lo,
+                    self._block_hi,
+                    counter_like,
+                    self.threshold,
+                    self.detectors,
+                    removed,
+                    words,
+                    min_overlap,
+                    lo,
+                    hi,
+                    slab_lo,
+                    slab_hi,
+                    out_rows,
+                    out_ov,
+                    counts,
+                )
+            pending = []
+            for c in range(lo.shape[0]):
+                n_hits = int(counts[lo[c] : done[c]].sum())
+                a = int(slab_lo[c])
+                pieces.append((int(lo[c]), out_rows[a : a + n_hits].copy(), out_ov[a : a + n_hits].copy()))
+                if done[c] < hi[c]:
+                    pending.append((int(done[c]), int(hi[c])))
+            per_query *= 8
+        pieces.sort(key=lambda p: p[0])
+        rows = np.concatenate([p[1] for p in pieces])
+        overlaps = np.concatenate([p[2] for p in pieces])
+        return counts, rows, overlaps
+
+    # -- inspection ------------------------------------------------------
+
+    def postings_of(self, bit: int) -> np.ndarray:
+        """All detector ids that sampled ``bit`` (across blocks, ascending)."""
+        parts = [
+            self._block_lo[k] + self._post[self._block_indptr[k, bit] : self._block_indptr[k, bit + 1]].astype(np.int64)
+            for k in range(self.block_count)
+        ]
+        return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
+
+    def _check(self, expected_samples=None) -> None:
+        """Invariants: block ranges, offsets monotone and in range, ids sorted.
+
+        ``expected_samples`` (optional ``(det_indptr, det_bits)`` for every
+        row) must then equal the postings exactly. Raises AssertionError
+        with the state printed.
+        """
+        bi, lo, hi = self._block_indptr, self._block_lo, self._block_hi
+        state = (
+            f"rows={self.rows} used={self._used} blocks={lo.shape[0]} buffer={self._post.shape[0]} "
+            f"lo={lo[:6].tolist()} hi={hi[:6].tolist()}"
+        )
+        span = self.block_span
+        assert bi.ndim == 2 and bi.shape[1] == self.bits + 1 and bi.shape[0] == lo.shape[0] == hi.shape[0], state
+        assert self._used <= self._post.shape[0], state
+        if lo.shape[0]:
+            assert lo[0] == 0 and hi[-1] == self.rows * self.detectors, f"blocks do not cover the detectors: {state}"
+            assert np.all(hi > lo) and np.all(lo[1:] == hi[:-1]), f"block ranges not consecutive: {state}"
+            assert np.all((hi - 1) // span == lo // span), f"a block crosses a span boundary: {state}"
+            assert bi[0, 0] == 0 and bi[-1, -1] == self._used, state
+            assert np.all(np.diff(bi, axis=1) >= 0), f"offsets not monotone: {state}"
+            assert np.all(bi[1:, 0] == bi[:-1, -1]), f"blocks not contiguous: {state}"
+            for k in range(lo.shape[0]):
+                seg = self._post[bi[k, 0] : bi[k, -1]]
+                assert seg.size == 0 or int(seg.max()) < hi[k] - lo[k], f"offset beyond block {k}: {state}"
+            groups = lo // span
+            full_spans = np.unique(groups[:-1][groups[:-1] == groups[1:]])
+            last = groups[-1]
+            assert np.all(full_spans == last), f"a full span is split into several blocks: {state}"
+            tail = bi[groups == last]
+            limit = 2 + int(np.log2(1 + tail[-1, -1] - tail[0, 0]))
+            assert tail.shape[0] <= limit, f"too many blocks in the last span: {state}"
+        else:
+            assert self._used == 0 and self.rows == 0, state
+        for b in range(self.bits):
+            ids = self.postings_of(b)
+            assert np.all(np.diff(ids) > 0), f"postings of bit {b} not strictly ascending: {state}"
+        if expected_samples is not None:
+            det_indptr, det_bits = expected_samples
+            det_of = np.repeat(np.arange(det_indptr.shape[0] - 1), np.diff(det_indptr))
+            order = np.lexsort((det_of, det_bits))
+            want = det_of[order]
+            got = np.concatenate([self.postings_of(b) for b in range(self.bits)])
+            assert np.array_equal(want, got), f"postings differ from the detector samples: {state}"
+
+
+def _split_ranges(ranges, tasks):
+    """Cut query ranges into about ``tasks`` contiguous pieces."""
+    total = sum(hi - lo for lo, hi in ranges)
+    step = max(1, -(-total // tasks))
+    los, his = [], []
+    for lo, hi in ranges:
+        while lo < hi:
+            end = min(hi, lo + step)
+            los.append(lo)
+            his.append(end)
+            lo = end
+    return los, his

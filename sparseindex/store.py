@@ -1,0 +1,580 @@
+"""The Store: packed codes, their detector banks, and threshold queries.
+
+A stored code is a *hit* for a query when any detector of its bank fires:
+at least ``threshold`` of the detector's ``segment`` sampled bits are set in
+the query. Hits come back with their exact full-code overlap (AND +
+popcount over the packed rows), so a caller can rank or filter them.
+
+Ids are 0, 1, 2, ... in insertion order and never reused. Internally a code
+lives in a *row*; rows and ids coincide until ``compact`` drops removed
+rows, after which a sorted ``row -> id`` table maps between them.
+"""
+
+from __future__ import annotations
+
+import threading
+from numbers import Integral
+
+import numpy as np
+
+from . import _kernels
+from ._config import PARALLEL_LOCK
+from .bank import BLOCK_SPAN, DetectorBank
+from .codes import Codes, as_code, as_codes
+
+__all__ = ["Store", "Hits", "BatchHits"]
+
+
+def _check_int(name: str, value, minimum: int) -> int:
+    if isinstance(value, (bool, np.bool_)) or not isinstance(value, (Integral, np.integer)):
+        raise TypeError(f"{name}={value!r} must be an integer")
+    if value < minimum:
+        raise ValueError(f"{name}={value} must be >= {minimum}")
+    return int(value)
+
+
+def _check_min_overlap(min_overlap) -> int:
+    if min_overlap is None:
+        return 0
+    return _check_int("min_overlap", min_overlap, 0)
+
+
+class Hits:
+    """The stored codes hit by one query.
+
+    ``ids`` and ``overlaps`` (exact full-code overlap with the query) are
+    int64 arrays ordered by overlap descending, then id ascending.
+    Iterating yields ``(id, overlap)`` pairs.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> h = Hits(np.array([4, 1]), np.array([9, 7]))
+    >>> len(h), list(h)
+    (2, [(4, 9), (1, 7)])
+    """
+
+    __slots__ = ("ids", "overlaps")
+
+    def __init__(self, ids, overlaps):
+        self.ids = np.asarray(ids, dtype=np.int64)
+        self.overlaps = np.asarray(overlaps, dtype=np.int64)
+
+    def __len__(self) -> int:
+        return self.ids.shape[0]
+
+    def __iter__(self):
+        return zip(self.ids.tolist(), self.overlaps.tolist())
+
+    def __eq__(self, other):
+        if not isinstance(other, Hits):
+            return NotImplemented
+        return np.array_equal(self.ids, other.ids) and np.array_equal(self.overlaps, other.overlaps)
+
+    __hash__ = None
+
+    def __repr__(self) -> str:
+        shown = ", ".join(f"{i}:{o}" for i, o in list(self)[:8])
+        more = ", ..." if len(self) > 8 else ""
+        return f"Hits({len(self)} [id:overlap] {shown}{more})"
+
+
+class BatchHits:
+    """Hits of many queries in flat CSR arrays.
+
+    Query ``i``'s hits are ``ids[indptr[i]:indptr[i+1]]`` with the matching
+    ``overlaps``, ordered as in :class:`Hits`. A million results cost three
+    arrays, not a million objects.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> b = BatchHits(np.array([0, 2, 2]), np.array([3, 5]), np.array([8, 6]))
+    >>> len(b), b[0].ids.tolist(), len(b[1])
+    (2, [3, 5], 0)
+    """
+
+    __slots__ = ("indptr", "ids", "overlaps")
+
+    def __init__(self, indptr, ids, overlaps):
+        self.indptr = np.asarray(indptr, dtype=np.int64)
+        self.ids = np.asarray(ids, dtype=np.int64)
+        self.overlaps = np.asarray(overlaps, dtype=np.int64)
+
+    def __len__(self) -> int:
+        return self.indptr.shape[0] - 1
+
+    def __getitem__(self, i) -> Hits:
+        n = len(self)
+        if isinstance(i, (bool, np.bool_)) or not isinstance(i, (Integral, np.integer)):
+            raise TypeError(f"BatchHits index must be an integer, got {i!r}")
+        if not -n <= i < n:
+            raise IndexError(f"query index {i} out of range for {n} queries")
+        i = int(i) % n
+        a, b = self.indptr[i], self.indptr[i + 1]
+        return Hits(self.ids[a:b], self.overlaps[a:b])
+
+    def __iter__(self):
+        for i in range(len(self)):
+            yield self[i]
+
+    @property
+    def counts(self) -> np.ndarray:
+        """Number of hits of each query."""
+        return np.diff(self.indptr)
+
+    def __repr__(self) -> str:
+        return f"BatchHits(queries={len(self)}, hits={self.ids.shape[0]})"
+
+
+class Store:
+    """A content-addressable store of sparse binary codes.
+
+    Parameters
+    ----------
+    bits : int
+        Width of every code (n).
+    threshold : int
+        A detector fires when at least this many of its sampled bits are set
+        in the query (θ).
+    segment : int or None
+        Set bits each detector samples from its code (s); None samples all
+        of them. A code lighter than ``segment`` is sampled whole.
+    detectors : int
+        Detectors per stored code (D), sampled independently.
+    seed : int or None
+        Seeds the detector sampling; a code's samples depend only on this
+        seed and the code's id. None draws a fresh seed (kept in
+        ``store.seed``).
+
+    Notes
+    -----
+    Memory per code is ``8 * ceil(bits / 64)`` bytes of packed code, ``4 *
+    detectors * segment`` bytes of postings and 13 bytes of bookkeeping. A
+    query costs one counter update per posting of its set bits (about
+    ``q * N * D * s / bits``) plus one AND + popcount per hit.
+
+    Not safe for mutation (``add``, ``remove``, ``compact``) concurrent with
+    queries from other threads; concurrent queries are safe.
+
+    Examples
+    --------
+    >>> store = Store(bits=64, threshold=3, seed=1)
+    >>> store.add([[1, 2, 3, 4], [10, 11, 12]]).tolist()
+    [0, 1]
+    >>> store.query([1, 2, 3, 50]).ids.tolist()
+    [0]
+    >>> store.query([10, 11, 12, 1]).overlaps.tolist()
+    [3]
+    """
+
+    #: Detectors per postings block; tests lower it to exercise many blocks.
+    _block_span = BLOCK_SPAN
+
+    def __init__(self, bits, *, threshold, segment=None, detectors=1, seed=None):
+        bits = _check_int("bits", bits, 1)
+        threshold = _check_int("threshold", threshold, 1)
+        if segment is not None:
+            segment = _check_int("segment", segment, 1)
+            if threshold > segment:
+                raise ValueError(f"threshold={threshold} must be <= segment={segment}")
+        if threshold > bits:
+            raise ValueError(f"threshold={threshold} must be <= bits={bits}: no code could ever be recalled")
+        detectors = _check_int("detectors", detectors, 1)
+        if seed is None:
+            seed = int(np.random.SeedSequence().generate_state(1, dtype=np.uint64)[0])
+        else:
+            seed = _check_int("seed", seed, 0)
+            if seed >= 2**64:
+                raise ValueError(f"seed={seed} must be < 2**64")
+        self._bits = bits
+        self._threshold = threshold
+        self._segment = segment
+        self._detectors = detectors
+        self._seed = seed
+        self._bank = DetectorBank(bits, threshold, segment, detectors, seed, self._block_span)
+        n_words = (bits + 63) // 64
+        self._words = np.zeros((0, n_words), dtype=np.uint64)
+        self._weights = np.zeros(0, dtype=np.int32)
+        self._removed = np.zeros(0, dtype=bool)
+        self._row_ids = None  # None: row r holds id r
+        self._rows = 0
+        self._next_id = 0
+        self._removed_count = 0
+        self._local = threading.local()
+
+    # -- parameters ----------------------------------------------------------
+
+    bits = property(lambda self: self._bits, doc="Width of every code.")
+    threshold = property(lambda self: self._threshold, doc="Sampled bits a detector needs to fire.")
+    segment = property(lambda self: self._segment, doc="Set bits each detector samples (None: all).")
+    detectors = property(lambda self: self._detectors, doc="Detectors per stored code.")
+    seed = property(lambda self: self._seed, doc="Seed of the detector sampling.")
+
+    @property
+    def next_id(self) -> int:
+        """The id the next added code will get."""
+        return self._next_id
+
+    @property
+    def removed_count(self) -> int:
+        """Removed codes whose rows ``compact`` has not reclaimed yet."""
+        return self._removed_count
+
+    @property
+    def postings_count(self) -> int:
+        """Postings held (D·s per code, plus removed ones until ``compact``)."""
+        return self._bank.postings_count
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes held by codes, postings and bookkeeping (capacity included)."""
+        total = self._words.nbytes + self._weights.nbytes + self._removed.nbytes + self._bank.nbytes
+        if self._row_ids is not None:
+            total += self._row_ids.nbytes
+        return total
+
+    def __len__(self) -> int:
+        return self._rows - self._removed_count
+
+    def __contains__(self, code_id) -> bool:
+        if isinstance(code_id, (bool, np.bool_)) or not isinstance(code_id, (Integral, np.integer)):
+            return False
+        row = self._row_of(int(code_id))
+        return row >= 0 and not self._removed[row]
+
+    def __repr__(self) -> str:
+        return (
+            f"Store(bits={self._bits}, threshold={self._threshold}, segment={self._segment}, "
+            f"detectors={self._detectors}, items={len(self)}, removed={self._removed_count}, "
+            f"seed={self._seed})"
+        )
+
+    # -- id <-> row -------------------------------------------------------
+
+    def _ids_of_rows(self, rows: np.ndarray) -> np.ndarray:
+        if self._row_ids is None:
+            return rows.astype(np.int64, copy=True)
+        return self._row_ids[rows]
+
+    def _row_of(self, code_id: int) -> int:
+        """Row of a stored id, or -1 if the id was never stored or was compacted away."""
+        if code_id < 0 or code_id >= self._next_id:
+            return -1
+        if self._row_ids is None:
+            return code_id
+        r = int(np.searchsorted(self._row_ids[: self._rows], code_id))
+        if r < self._rows and self._row_ids[r] == code_id:
+            return r
+        return -1
+
+    def _live_rows_of(self, ids, what: str) -> np.ndarray:
+        """Rows of ``ids`` (int or 1-D int array-like); KeyError for any not stored."""
+        arr = np.asarray(ids)
+        if arr.ndim > 1:
+            raise ValueError(f"{what}: ids must be an integer or a 1-D sequence, got shape {arr.shape}")
+        arr = arr.reshape(-1)
+        if arr.size and (arr.dtype == np.bool_ or arr.dtype.kind not in "iu"):
+            bad = next((x for x in arr.tolist() if isinstance(x, bool) or not isinstance(x, int)), arr.tolist()[0])
+            raise TypeError(f"{what}: id {bad!r} is not an integer")
+        arr = arr.astype(np.int64)
+        never = np.flatnonzero((arr < 0) | (arr >= self._next_id))
+        if never.size:
+            raise KeyError(
+                f"{what}: id {int(arr[never[0]])} was never stored (ids so far: 0..{self._next_id - 1})"
+            )
+        if self._row_ids is None:
+            rows = arr.copy()
+            gone = np.zeros(arr.shape[0], dtype=bool)
+        else:
+            table = self._row_ids[: self._rows]
+            rows = np.searchsorted(table, arr)
+            gone = rows >= self._rows
+            rows[gone] = 0
+            gone |= table[rows] != arr if self._rows else np.ones(arr.shape[0], dtype=bool)
+        if self._rows:
+            gone |= self._removed[rows]
+        bad = np.flatnonzero(gone)
+        if bad.size:
+            raise KeyError(f"{what}: id {int(arr[bad[0]])} was removed")
+        return rows
+
+    # -- mutation -----------------------------------------------------------
+
+    def add(self, codes) -> np.ndarray:
+        """Store a batch of codes; return their new ids (int64).
+
+        Accepts a :class:`~sparseindex.Codes`, a list/tuple of index
+        sequences, a 2-D bool ndarray, a scipy.sparse matrix or a list of
+        ``bitarray``. Every row is checked before anything is stored: one
+        bad row and the batch adds nothing. O(batch set bits + D·s per code).
+
+        Raises
+        ------
+        ValueError
+            A bad row (message names it), or a code with fewer set bits
+            than ``threshold`` (no detector of it could ever fire).
+
+        Examples
+        --------
+        >>> s = Store(bits=16, threshold=2, seed=0)
+        >>> s.add([[0, 1], [2, 3, 4]]).tolist(), len(s)
+        ([0, 1], 2)
+        >>> s.add([[5, 6], [7]])
+        Traceback (most recent call last):
+        ...
+        ValueError: add: row 1 has 1 set bits, fewer than threshold=2: no detector could ever fire for it
+        >>> len(s)
+        2
+        """
+        batch = as_codes(codes, self._bits, what="add")
+        m = len(batch)
+        if m == 0:
+            return np.zeros(0, dtype=np.int64)
+        weights = batch._weights
+        weak = np.flatnonzero(weights < self._threshold)
+        if weak.size:
+            r = int(weak[0])
+            raise ValueError(
+                f"add: row {r} has {int(weights[r])} set bits, fewer than threshold={self._threshold}: "
+                "no detector could ever fire for it"
+            )
+        ids = np.arange(self._next_id, self._next_id + m, dtype=np.int64)
+        need = self._rows + m
+        words, wts, removed, row_ids = self._words, self._weights, self._removed, self._row_ids
+        adopt = self._rows == 0
+        if adopt:
+            # a Codes batch never changes, so an empty store can take its
+            # rows without a copy (first-touch of fresh memory is slow)
+            words = batch._words
+            wts = weights.astype(np.int32)
+            removed = np.zeros(m, dtype=bool)
+        elif need > words.shape[0]:
+            # room for the rows first: a MemoryError here changes nothing
+            capacity = max(need, int(words.shape[0] * 1.5))
+            words = _grown(words, capacity, self._rows)
+            wts = _grown(wts, capacity, self._rows)
+            removed = _grown(removed, capacity, self._rows)
+            if row_ids is not None:
+                row_ids = _grown(row_ids, capacity, self._rows)
+        elif row_ids is not None and need > row_ids.shape[0]:
+            row_ids = _grown(row_ids, words.shape[0], self._rows)
+        self._bank.append(batch._words, ids)
+        if not adopt:
+            words[self._rows : need] = batch._words
+            wts[self._rows : need] = weights
+            removed[self._rows : need] = False
+        if row_ids is not None:
+            row_ids[self._rows : need] = ids
+        self._words, self._weights, self._removed, self._row_ids = words, wts, removed, row_ids
+        self._rows = need
+        self._next_id += m
+        return ids
+
+    def remove(self, ids) -> None:
+        """Remove codes by id; they never come back and their ids are not reused.
+
+        All ids are checked first: an unknown, already removed or repeated
+        id raises ``KeyError`` naming it and nothing is removed. Postings
+        stay until :meth:`compact`; removed codes are never returned.
+
+        Examples
+        --------
+        >>> s = Store(bits=8, threshold=1, seed=0); _ = s.add([[1], [2]])
+        >>> s.remove([0]); 0 in s, len(s)
+        (False, 1)
+        >>> s.remove(0)
+        Traceback (most recent call last):
+        ...
+        KeyError: 'remove: id 0 was removed'
+        """
+        rows = self._live_rows_of(ids, "remove")
+        uniq, counts = np.unique(rows, return_counts=True)
+        if (counts > 1).any():
+            dup_row = int(uniq[np.flatnonzero(counts > 1)[0]])
+            dup_id = int(self._ids_of_rows(np.array([dup_row]))[0])
+            raise KeyError(f"remove: id {dup_id} appears more than once in one call")
+        self._removed[rows] = True
+        self._removed_count += rows.shape[0]
+
+    def compact(self) -> None:
+        """Reclaim removed rows and merge the postings into one block.
+
+        Ids do not change. O(stored codes + postings).
+        """
+        live = ~self._removed[: self._rows]
+        rows_left = int(live.sum())
+        words = np.ascontiguousarray(self._words[: self._rows][live])
+        wts = self._weights[: self._rows][live].copy()
+        ids_kept = self._ids_of_rows(np.flatnonzero(live))
+        identity = rows_left == self._next_id  # nothing was ever dropped
+        bank = self._bank.rebuilt(words, ids_kept)
+        self._bank = bank
+        self._words, self._weights = words, wts
+        self._removed = np.zeros(rows_left, dtype=bool)
+        self._row_ids = None if identity else ids_kept
+        self._rows = rows_left
+        self._removed_count = 0
+        self._local = threading.local()
+
+    # -- reading ----------------------------------------------------------
+
+    def get(self, ids) -> Codes:
+        """The stored codes with these ids, in the order given.
+
+        Examples
+        --------
+        >>> s = Store(bits=8, threshold=1, seed=0); _ = s.add([[1, 2], [5]])
+        >>> s.get([1, 0]).to_indices()[0].tolist()
+        [5]
+        """
+        rows = self._live_rows_of(ids, "get")
+        return Codes(self._words[rows].copy(), self._bits)
+
+    def detector_bits(self, code_id) -> np.ndarray:
+        """The bits each detector of a stored code sampled, shape (detectors, sample).
+
+        Rows are sorted; ``sample = min(segment, weight)``. Recomputed from
+        the seed and the id, exactly as at ``add``.
+
+        Examples
+        --------
+        >>> s = Store(bits=32, threshold=2, segment=3, detectors=2, seed=7)
+        >>> _ = s.add([[1, 4, 9, 16, 25]])
+        >>> s.detector_bits(0).shape
+        (2, 3)
+        """
+        row = self._live_rows_of(code_id, "detector_bits")[0]
+        code_id = int(self._ids_of_rows(np.array([row]))[0])
+        indptr, indices = _kernels.unpack_indices(self._words[row : row + 1], self._weights[row : row + 1].astype(np.int64))
+        det_indptr, det_bits = self._bank.sample(indptr, indices, np.array([code_id]))
+        return det_bits.reshape(self._detectors, -1)
+
+    def _counters(self) -> np.ndarray:
+        counters = getattr(self._local, "counters", None)
+        if counters is None or not self._bank.counters_fit(counters):
+            counters = self._bank.new_counters()
+            self._local.counters = counters
+        return counters
+
+    def query(self, code, *, min_overlap=None) -> Hits:
+        """The stored codes with at least one firing detector for this query.
+
+        ``min_overlap`` additionally drops hits whose exact full overlap
+        with the query is below it. Wraps kernel ``query_one``:
+        O(postings of the query's set bits + hits).
+
+        Examples
+        --------
+        >>> s = Store(bits=32, threshold=2, seed=0); _ = s.add([[1, 2, 3], [3, 4, 5]])
+        >>> s.query([1, 2, 3, 4]).ids.tolist()
+        [0, 1]
+        >>> s.query([1, 2, 3, 4], min_overlap=3).ids.tolist()
+        [0]
+        """
+        q = as_code(code, self._bits, what="query")
+        min_ov = _check_min_overlap(min_overlap)
+        if self._rows == 0:
+            return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
+        q_bits = q._csr()[1]
+        rows, overlaps = self._bank.scan_one(
+            q_bits, q._words[0], self._words, self._removed, min_ov, self._counters()
+        )
+        ids = self._ids_of_rows(rows)
+        order = np.lexsort((ids, -overlaps))
+        return Hits(ids[order], overlaps[order])
+
+    def query_many(self, codes, *, min_overlap=None) -> BatchHits:
+        """:meth:`query` for a batch, in parallel threads (kernel ``query_batch``).
+
+        Examples
+        --------
+        >>> s = Store(bits=32, threshold=2, seed=0); _ = s.add([[1, 2, 3], [3, 4, 5]])
+        >>> hits = s.query_many([[1, 2], [4, 5], [9, 10]])
+        >>> [h.ids.tolist() for h in hits]
+        [[0], [1], []]
+        """
+        batch = as_codes(codes, self._bits, what="query_many")
+        min_ov = _check_min_overlap(min_overlap)
+        n = len(batch)
+        if self._rows == 0 or n == 0:
+            return BatchHits(np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64))
+        q_indptr, q_bits = batch._csr()
+        counts, rows, overlaps = self._bank.scan_many(
+            q_indptr, q_bits, batch._words, self._words, self._removed, min_ov
+        )
+        ids = self._ids_of_rows(rows)
+        which = np.repeat(np.arange(n, dtype=np.int64), counts)
+        order = np.lexsort((ids, -overlaps, which))
+        indptr = np.zeros(n + 1, dtype=np.int64)
+        np.cumsum(counts, out=indptr[1:])
+        return BatchHits(indptr, ids[order], overlaps[order])
+
+    def nearest(self, code, k) -> Hits:
+        """The exact ``k`` stored codes of greatest overlap (ties to the lower id).
+
+        Scans every stored code (AND + popcount, kernel
+        ``overlaps_with_all``), so it is right even when no detector fires:
+        O(N · words per code). Fewer than ``k`` come back only when fewer are
+        stored.
+
+        Examples
+        --------
+        >>> s = Store(bits=32, threshold=3, seed=0); _ = s.add([[1, 2, 3], [3, 4, 5], [7, 8, 9]])
+        >>> s.nearest([3, 4, 20], k=2).ids.tolist()
+        [1, 0]
+        """
+        q = as_code(code, self._bits, what="nearest")
+        k = _check_int("k", k, 0)
+        if self._rows == 0 or k == 0:
+            return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
+        with PARALLEL_LOCK:
+            overlaps = _kernels.overlaps_with_all(q._words[0], self._words, self._rows)
+        rows = _kernels.top_k(overlaps, self._removed, k, self._bits)
+        return Hits(self._ids_of_rows(rows), overlaps[rows])
+
+    def __iter__(self):
+        raise TypeError("a Store is not iterable; use store.ids() and store.get(ids)")
+
+    def ids(self) -> np.ndarray:
+        """Ids of every stored (not removed) code, ascending."""
+        rows = np.flatnonzero(~self._removed[: self._rows])
+        return self._ids_of_rows(rows)
+
+    # -- invariants -------------------------------------------------------
+
+    def _check(self, deep: bool = True) -> None:
+        """Check every invariant; AssertionError with the state on failure.
+
+        ``deep`` also recomputes every detector sample and compares it with
+        the postings (O(N · D · s)); for tests.
+        """
+        state = repr(self)
+        n = self._rows
+        assert self._words.shape[0] >= n and self._weights.shape[0] >= n and self._removed.shape[0] >= n, state
+        words = self._words[:n]
+        assert np.array_equal(_kernels.row_weights(words), self._weights[:n].astype(np.int64)), f"weights stale: {state}"
+        tail = self._bits % 64
+        if tail and n:
+            assert not np.any(words[:, -1] >> np.uint64(tail)), f"padding bits set: {state}"
+        assert int(self._removed[:n].sum()) == self._removed_count, f"removed count: {state}"
+        if n:
+            assert self._weights[:n].min() >= self._threshold, f"a stored code is lighter than threshold: {state}"
+        if self._row_ids is not None:
+            ids = self._row_ids[:n]
+            assert np.all(np.diff(ids) > 0), f"row ids not ascending: {state}"
+            assert n == 0 or (ids[0] >= 0 and ids[-1] < self._next_id), state
+        else:
+            assert n == self._next_id, f"identity row map but rows != next_id: {state}"
+        assert self._bank.rows == n, f"bank rows {self._bank.rows} != {n}: {state}"
+        expected = None
+        if deep and n:
+            indptr, indices = _kernels.unpack_indices(words, self._weights[:n].astype(np.int64))
+            expected = self._bank.sample(indptr, indices, self._ids_of_rows(np.arange(n)))
+        self._bank._check(expected)
+
+
+def _grown(array: np.ndarray, capacity: int, used: int) -> np.ndarray:
+    out = np.zeros((capacity,) + array.shape[1:], dtype=array.dtype)
+    out[:used] = array[:used]
+    return out
