@@ -64,11 +64,11 @@ def _validated_indices(flat, indptr: np.ndarray, bits: int) -> np.ndarray:
         bad = np.flatnonzero(~np.isfinite(flat))
         if bad.size:
             p = int(bad[0])
-            raise ValueError(f"row {_row_of(indptr, p)}: bit index {flat[p]!r} is not a finite integer")
+            raise ValueError(f"row {_row_of(indptr, p)}: bit index {flat[p].item()!r} is not a finite integer")
         bad = np.flatnonzero(flat != np.floor(flat))
         if bad.size:
             p = int(bad[0])
-            raise ValueError(f"row {_row_of(indptr, p)}: bit index {flat[p]!r} is not an integer")
+            raise ValueError(f"row {_row_of(indptr, p)}: bit index {flat[p].item()!r} is not an integer")
     elif flat.dtype.kind == "O":
         for p, value in enumerate(flat):
             if isinstance(value, (bool, np.bool_)) or not isinstance(value, Integral):
@@ -87,7 +87,7 @@ def _validated_indices(flat, indptr: np.ndarray, bits: int) -> np.ndarray:
         if bad.size:
             p = int(bad[0])
             value = flat[p]
-            shown = int(value) if flat.dtype.kind != "f" else value
+            shown = int(value) if flat.dtype.kind != "f" else value.item()
             raise ValueError(
                 f"row {_row_of(indptr, p)}: bit index {shown!r} is out of range for bits={bits} "
                 f"(valid 0..{bits - 1})"
@@ -270,7 +270,7 @@ class Codes:
                 raise ValueError(f"packed uint64 rows for bits={bits} need {expected} words, got {array.shape[1]}")
             if bitorder == "little":
                 return cls(array.astype(np.uint64, copy=True), bits)
-            as_bytes = np.ascontiguousarray(array.astype(">u8")).view(np.uint8).reshape(rows, -1)
+            as_bytes = np.ascontiguousarray(array.astype(">u8")).view(np.uint8).reshape(rows, 8 * array.shape[1])
             data = _REVERSE_BYTE[as_bytes]
             return cls(np.ascontiguousarray(data).view("<u8").astype(np.uint64), bits)
         raise TypeError(f"packed codes must be uint8 or uint64, got dtype {array.dtype}")
@@ -335,7 +335,7 @@ class Codes:
         bad = np.flatnonzero((data != 0) & (data != 1))
         if bad.size:
             p = int(bad[0])
-            raise ValueError(f"row {_row_of(indptr, p)}: value {data[p]!r} at bit index {int(flat[p])} is not 0 or 1")
+            raise ValueError(f"row {_row_of(indptr, p)}: value {data[p].item()!r} at bit index {int(flat[p])} is not 0 or 1")
         keep = data != 0
         if not keep.all():
             rows_of_entries = np.repeat(np.arange(rows, dtype=np.int64), np.diff(indptr))
@@ -405,12 +405,18 @@ class Codes:
         >>> [a.tolist() for a in Codes.from_indices([[4, 1], []], bits=8).to_indices()]
         [[1, 4], []]
         """
+        if len(self) == 0:
+            return []
         indptr, flat = self._csr()
         return np.split(flat, indptr[1:-1])
 
+    def _le_bytes(self) -> np.ndarray:
+        """The packed rows as little-endian bytes, shape (rows, 8 * words)."""
+        return self._words.astype("<u8", copy=False).view(np.uint8).reshape(len(self), 8 * self._words.shape[1])
+
     def to_dense(self) -> np.ndarray:
         """A (rows, bits) bool array."""
-        as_bytes = self._words.astype("<u8", copy=False).view(np.uint8).reshape(len(self), -1)
+        as_bytes = self._le_bytes()
         return np.unpackbits(as_bytes, axis=1, count=self._bits, bitorder="little").astype(bool)
 
     def to_packed(self, bitorder="little", dtype=np.uint8) -> np.ndarray:
@@ -431,10 +437,10 @@ class Codes:
         if dtype == np.uint64:
             if bitorder == "little":
                 return self._words.copy()
-            as_bytes = self._words.astype("<u8", copy=False).view(np.uint8).reshape(rows, -1)
+            as_bytes = self._le_bytes()
             return np.ascontiguousarray(_REVERSE_BYTE[as_bytes]).view(">u8").astype(np.uint64)
         if dtype == np.uint8:
-            as_bytes = self._words.astype("<u8", copy=False).view(np.uint8).reshape(rows, -1)
+            as_bytes = self._le_bytes()
             as_bytes = as_bytes[:, : (self._bits + 7) // 8]
             return np.ascontiguousarray(as_bytes if bitorder == "little" else _REVERSE_BYTE[as_bytes])
         raise TypeError(f"to_packed dtype must be uint8 or uint64, got {dtype}")
