@@ -349,6 +349,8 @@ class Store:
             words = batch._words
             wts = weights.astype(np.int32)
             removed = np.zeros(m, dtype=bool)
+            if row_ids is not None:  # emptied by compact: ids no longer start at 0
+                row_ids = np.zeros(m, dtype=np.int64)
         elif need > words.shape[0]:
             # room for the rows first: a MemoryError here changes nothing
             capacity = max(need, int(words.shape[0] * 1.5))

@@ -1,0 +1,91 @@
+"""Facts of deployment: no writable numba cache, and concurrent threads.
+
+Each case runs in a fresh interpreter, because numba reads its cache and
+threading settings once per process.
+"""
+
+import os
+import subprocess
+import sys
+import textwrap
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parents[1]
+
+pytestmark = pytest.mark.jit_only
+
+SMOKE = textwrap.dedent(
+    """
+    import sparseindex
+    from sparseindex import Codes, Store, _config
+    codes = Codes.random(500, 128, 12, seed=1)
+    store = Store(128, threshold=6, seed=2)
+    store.add(codes)
+    assert store.query(codes[3]).ids[0] == 3
+    assert store.query_many(codes[:20])[5].ids[0] == 5
+    print(_config.cache_mode)
+    """
+)
+
+
+def run(code: str, **env) -> subprocess.CompletedProcess:
+    full_env = {**os.environ, "PYTHONPATH": str(ROOT), **env}
+    full_env.pop("NUMBA_DISABLE_JIT", None)
+    return subprocess.run([sys.executable, "-c", code], env=full_env, capture_output=True, text=True, timeout=600)
+
+
+def test_import_survives_no_cache_location():
+    """numba finds no writable cache location: compile without a cache, never fail."""
+    # ZipCacheLocator alone finds no location for a plain source file, which
+    # is what numba reports for read-only site-packages without a home.
+    result = run(SMOKE, NUMBA_CACHE_LOCATOR_CLASSES="ZipCacheLocator")
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip().splitlines()[-1] == "off"
+
+
+def test_falls_back_to_a_private_temporary_cache(tmp_path):
+    """No in-tree or home cache, but a cache folder can be set: use it."""
+    result = run(
+        SMOKE,
+        NUMBA_CACHE_LOCATOR_CLASSES="ZipCacheLocator,UserProvidedCacheLocator",
+        TMPDIR=str(tmp_path),
+    )
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip().splitlines()[-1] == "temporary"
+    assert any(tmp_path.glob("sparseindex-numba-*/**/*.nbi"))
+
+
+def test_parallel_kernels_from_many_threads_under_workqueue():
+    """With the workqueue layer, concurrent parallel sections would abort: they are serialised."""
+    code = textwrap.dedent(
+        """
+        import threading
+        from sparseindex import Codes, Store
+        codes = Codes.random(3000, 256, 16, seed=1)
+        store = Store(256, threshold=5, segment=10, detectors=2, seed=2)
+        store.add(codes)
+        want = [store.query_many(codes[i * 50:(i + 1) * 50]) for i in range(8)]
+        want_near = store.nearest(codes[7], 5)
+        errors = []
+        def work(k):
+            try:
+                for rep in range(15):
+                    got = store.query_many(codes[k * 50:(k + 1) * 50])
+                    assert all(a == b for a, b in zip(got, want[k]))
+                    assert store.nearest(codes[7], 5) == want_near
+                    assert store.query(codes[k]).ids[0] == k
+            except Exception as exc:
+                errors.append(repr(exc))
+        threads = [threading.Thread(target=work, args=(k,)) for k in range(8)]
+        for t in threads: t.start()
+        for t in threads: t.join()
+        import numba
+        print(numba.threading_layer(), len(errors), errors[:1])
+        """
+    )
+    result = run(code, NUMBA_THREADING_LAYER="workqueue")
+    assert result.returncode == 0, result.stderr[-2000:]
+    layer, n_errors = result.stdout.split()[:2]
+    assert layer == "workqueue" and n_errors == "0", result.stdout

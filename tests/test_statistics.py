@@ -1,0 +1,74 @@
+"""The real Store's false-hit and recall rates against scipy.stats.hypergeom.
+
+Reference: scipy.stats.hypergeom (general-purpose library). Parameters are
+chosen so the rates are near 1e-2 (false hits) and 0.3-0.5 (recall), where
+the counts are large; every check is within 3 sigma of the binomial count.
+
+Why the binomial variance holds for the false-hit count over (code, query)
+pairs: by symmetry the chance that a pair hits is the same whatever the
+query (or the code and its samples) is, so events of pairs that share a
+query or a code are still independent, pairwise, and variances add.
+"""
+
+import math
+
+import numpy as np
+import pytest
+from scipy.stats import hypergeom
+
+from sparseindex import Codes, Store
+
+pytestmark = pytest.mark.jit_only
+
+
+def reference_false_hit_per_code(bits, active, query_active, segment, threshold, detectors):
+    """Mixture over the overlap z ~ Hyp(bits, active, q); per detector Hyp(active, z, segment) >= threshold."""
+    z = np.arange(0, min(active, query_active) + 1)
+    p_overlap = hypergeom.pmf(z, bits, active, query_active)
+    p_detector = hypergeom.sf(threshold - 1, active, z, segment)
+    p_any = 1.0 - (1.0 - p_detector) ** detectors
+    return float(np.sum(p_overlap * p_any))
+
+
+def reference_recall(active, segment, threshold, detectors, lost):
+    r1 = hypergeom.sf(threshold - 1, active, active - lost, segment)
+    return 1.0 - (1.0 - r1) ** detectors
+
+
+def within_3_sigma(count, trials, p):
+    sigma = math.sqrt(trials * p * (1 - p))
+    return abs(count - trials * p) <= 3 * sigma, f"observed {count}, expected {trials * p:.1f} +- {3 * sigma:.1f}"
+
+
+@pytest.mark.parametrize("segment, threshold, detectors", [(8, 3, 1), (8, 3, 2)])
+def test_false_hit_rate_of_random_queries(segment, threshold, detectors):
+    bits, active = 256, 16
+    store = Store(bits, threshold=threshold, segment=segment, detectors=detectors, seed=17)
+    store.add(Codes.random(4000, bits, active, seed=1))
+    queries = Codes.random(500, bits, active, seed=2)
+    hits = store.query_many(queries)
+    p = reference_false_hit_per_code(bits, active, active, segment, threshold, detectors)
+    ok, msg = within_3_sigma(len(hits.ids), 4000 * 500, p)
+    assert ok, msg
+
+
+@pytest.mark.parametrize("segment, threshold, detectors", [(8, 3, 1), (8, 3, 2)])
+def test_recall_of_noisy_copies(segment, threshold, detectors):
+    """A copy that lost 12 of 16 bits (replaced from outside the code) hits its source with rate r."""
+    bits, active, lost, n = 256, 16, 12, 6000
+    codes = Codes.random(n, bits, active, seed=3)
+    store = Store(bits, threshold=threshold, segment=segment, detectors=detectors, seed=19)
+    store.add(codes)
+    rng = np.random.default_rng(4)
+    dense = codes.to_dense()
+    noisy = dense.copy()
+    for i in range(n):
+        on = np.flatnonzero(dense[i])
+        off = np.flatnonzero(~dense[i])
+        noisy[i, rng.choice(on, lost, replace=False)] = False
+        noisy[i, rng.choice(off, lost, replace=False)] = True
+    batch = store.query_many(noisy)
+    recalled = sum(int(i in set(batch[i].ids.tolist())) for i in range(n))
+    p = reference_recall(active, segment, threshold, detectors, lost)
+    ok, msg = within_3_sigma(recalled, n, p)
+    assert ok, msg
