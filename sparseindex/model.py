@@ -63,10 +63,8 @@ class PlanError(ValueError):
 
 def _fmt(value):
     """Format an offending value for an error message."""
-    if isinstance(value, (np.generic,)):
+    if isinstance(value, np.generic):
         value = value.item()
-    if isinstance(value, float) and value.is_integer() and abs(value) < 2**53:
-        return repr(value)
     return repr(value) if isinstance(value, (float, int)) else str(value)
 
 
@@ -74,14 +72,20 @@ def _is_scalar(*values):
     return all(np.ndim(v) == 0 for v in values)
 
 
-def _int_param(name, value):
-    """Return ``value`` as a float64 array of integers, or raise ValueError."""
+def _int_param(name, value, exact=True):
+    """Return ``value`` as an int64 array, or raise ValueError.
+
+    With ``exact=False`` (counts such as ``items``) any size is accepted and
+    a float64 array returned.
+    """
     if isinstance(value, (bool, np.bool_)):
         raise ValueError(f"{name}={value!r} must be an integer, not a bool")
     if isinstance(value, numbers.Integral):
+        if not exact:
+            return np.asarray(float(value))
         if abs(int(value)) > 2**53:
             raise ValueError(f"{name}={value} is too large (limit 2**53)")
-        return np.asarray(float(value))
+        return np.asarray(int(value), dtype=np.int64)
     arr = np.asarray(value)
     if arr.dtype == np.bool_ or arr.dtype.kind not in "iuf":
         raise ValueError(f"{name}={value!r} must be an integer")
@@ -89,10 +93,12 @@ def _int_param(name, value):
     bad = ~np.isfinite(arr) | (arr != np.floor(arr))
     if np.any(bad):
         raise ValueError(f"{name}={_fmt(arr[bad].flat[0])} must be an integer")
+    if not exact:
+        return arr
     if np.any(np.abs(arr) > 2.0**53):
         raise ValueError(f"{name}={_fmt(arr[np.abs(arr) > 2.0**53].flat[0])} "
                          "is too large (limit 2**53)")
-    return arr
+    return arr.astype(np.int64)
 
 
 def _real_param(name, value):
@@ -658,7 +664,11 @@ def recall(active, segment, threshold, detectors=1, noise=0.0, *,
     lmiss1 = _log_lower_tail(a, a - k, s, th)
     with np.errstate(invalid="ignore"):
         lmiss = np.where(np.isneginf(lmiss1), -np.inf, D * lmiss1)
-    lv = lmiss if complement else _log1mexp(lmiss)
+    if complement:
+        lv = lmiss
+    else:
+        # both tails are positive sums; the bank formula picks the exact one
+        lv = _log_bank_fires(_log_upper_tail(a, a - k, s, th), lmiss1, D)
     lv = lv.reshape(shape)
     return _out(lv if log else np.exp(lv), scalar)
 
@@ -771,8 +781,8 @@ def store_false_hit(per_code, items, *, log=False):
     """
     scalar = _is_scalar(per_code, items)
     lp = _per_code_param(per_code, log)
-    M = _int_param("items", items)
-    _need(M >= 0, "items={items} must be >= 0", items=M)
+    M = _int_param("items", items, exact=False)
+    _need(M >= 0, "items={items} must be >= 0", items=np.asarray(items))
     lv = _log_store_false_hit(lp, M)
     return _out(lv if log else np.exp(lv), scalar)
 
@@ -822,13 +832,19 @@ def capacity(per_code, false_hit, *, log=False):
     M = np.where(np.isneginf(lp), np.inf, M)
     M = np.where(lp >= 0, 0.0, M)
     M = np.asarray(M, dtype=np.float64)
-    # Settle rounding at the boundary by the model's own store_false_hit.
+    # Settle rounding at the boundary by the model's own store_false_hit,
+    # compared as that function reports it (log or not).
     lF = np.log(F)
+
+    def within(m):
+        lv = _log_store_false_hit(lp, m)
+        return lv <= lF if log else np.exp(lv) <= F
+
     fix = np.isfinite(M) & (M < 2.0**52)
     if np.any(fix):
         for _ in range(3):
-            up = fix & (_log_store_false_hit(lp, M + 1.0) <= lF)
-            down = fix & (M > 0) & (_log_store_false_hit(lp, M) > lF)
+            up = fix & within(M + 1.0)
+            down = fix & (M > 0) & ~within(M)
             if not (np.any(up) or np.any(down)):
                 break
             M = M + up - down
