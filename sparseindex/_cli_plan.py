@@ -1,0 +1,172 @@
+"""The ``sparseindex plan`` subcommand: size a store from its targets.
+
+``add_parser(subparsers)`` registers the subcommand on an argparse
+sub-parser collection; ``run(args)`` carries it out and returns the exit
+status (0, or 2 with a one-line message on stderr for a request that is
+malformed or cannot be met).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import math
+import sys
+
+from .model import PlanError
+from .planner import plan
+
+__all__ = ["add_parser", "run"]
+
+_POSTING_BYTES = 4  # postings are int32 detector ids
+
+
+def _count(text):
+    """A count such as 1000000, 1e6, 1_000_000 or 1,000,000."""
+    cleaned = text.replace(",", "").replace("_", "").strip()
+    try:
+        value = int(cleaned)
+    except ValueError:
+        try:
+            number = float(cleaned)
+        except ValueError:
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number")
+        if not math.isfinite(number) or not number.is_integer():
+            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number")
+        value = int(number)
+    return value
+
+
+def _number(text):
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number")
+    if math.isnan(value):
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number")
+    return value
+
+
+def add_parser(subparsers):
+    """Register ``plan`` on an argparse sub-parser collection; return it."""
+    p = subparsers.add_parser(
+        "plan",
+        help="choose segment, threshold and detectors for a false-hit target",
+        description=(
+            "Find the cheapest detector configuration (fewest postings per "
+            "stored code) for which a store of CAPACITY codes keeps the chance "
+            "of any false hit per unrelated query at or below FALSE_HIT, while "
+            "a query that lacks a NOISE fraction of a stored code's set bits "
+            "still recalls it with chance RECALL."),
+    )
+    p.add_argument("--bits", type=_count, required=True,
+                   help="code width in bits")
+    p.add_argument("--active", type=_count, required=True,
+                   help="set bits per code")
+    p.add_argument("--false-hit", type=_number, required=True, dest="false_hit",
+                   help="largest chance of a false hit per query, e.g. 1e-9")
+    p.add_argument("--capacity", type=_count, required=True,
+                   help="stored codes the target must hold for, e.g. 1e6")
+    p.add_argument("--noise", type=_number, default=0.0,
+                   help="fraction of set bits a query may lack (default 0)")
+    p.add_argument("--recall", type=_number, default=0.999,
+                   help="smallest recall of such a query (default 0.999)")
+    p.add_argument("--max-detectors", type=_count, default=8, dest="max_detectors",
+                   help="most detectors per stored code (default 8)")
+    p.add_argument("--json", action="store_true",
+                   help="print the plan as JSON instead of a table")
+    p.set_defaults(func=run)
+    return p
+
+
+def _fmt_count(value):
+    if isinstance(value, float) and not math.isfinite(value):
+        return "unbounded"
+    if value >= 1e15:
+        return f"{float(value):.3g}"
+    return f"{int(value):,}"
+
+
+def _fmt_recall(p):
+    if p.miss <= 0:
+        return "1"
+    if p.miss < 1e-6:
+        return f"1-{p.miss:.1e}"
+    digits = max(4, int(-math.floor(math.log10(p.miss))) + 2)
+    return f"{p.recall:.{digits}f}"
+
+
+def _fmt_bytes(n):
+    for unit in ("B", "kB", "MB", "GB", "TB"):
+        if n < 1000 or unit == "TB":
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000.0
+    return f"{n:.1f} TB"  # pragma: no cover
+
+
+def _table(best):
+    """The chosen plan and its alternatives as aligned text with units."""
+    heads = [("", ""), ("segment", "[bits]"), ("threshold", "[bits]"),
+             ("detectors", "[/code]"), ("postings", "[/code]"),
+             ("false hits", "[/code]"), ("false hits", "[/query]"),
+             ("recall", ""), ("capacity", "[codes]")]
+    rows = []
+    for rank, p in enumerate((best,) + tuple(best.alternatives)):
+        rows.append([
+            "chosen" if rank == 0 else f"option {rank + 1}",
+            str(p.segment), str(p.threshold), str(p.detectors),
+            str(p.postings_per_code),
+            f"{p.false_hit_per_code:.3g}", f"{p.false_hit_per_query:.3g}",
+            _fmt_recall(p), _fmt_count(p.capacity),
+        ])
+    widths = [max(len(h[0]), len(h[1]), *(len(r[i]) for r in rows))
+              for i, h in enumerate(heads)]
+
+    def line(cells):
+        first = cells[0].ljust(widths[0])
+        rest = [c.rjust(w) for c, w in zip(cells[1:], widths[1:])]
+        return "  " + "  ".join([first] + rest)
+
+    out = [line([h[0] for h in heads]), line([h[1] for h in heads])]
+    out.append("  " + "  ".join("-" * w for w in widths))
+    out.extend(line(r) for r in rows)
+    return out
+
+
+def _report(best):
+    lines = [
+        f"sparseindex plan: {best.bits:,}-bit codes with {best.active:,} set bits",
+        f"  target: at most {best.target_false_hit:g} false hits per query with "
+        f"{best.target_capacity:,} codes stored",
+        f"          recall at least {best.target_recall:g} when a query lacks "
+        f"{best.lost_bits} of the {best.active} set bits (noise {best.noise:g}), "
+        f"at most {best.max_detectors} detectors",
+        "",
+    ]
+    lines.extend(_table(best))
+    postings = best.postings_per_code * best.target_capacity
+    lines += [
+        "",
+        f"  capacity: stored codes at which false hits per query reach the target",
+        f"  at {best.target_capacity:,} codes: {postings:,} postings "
+        f"(~{_fmt_bytes(postings * _POSTING_BYTES)} as int32 ids), "
+        f"~{best.updates_per_query:,.0f} counter updates per query",
+    ]
+    return "\n".join(lines)
+
+
+def run(args):
+    """Carry out ``sparseindex plan``; return the exit status."""
+    try:
+        best = plan(args.bits, args.active, false_hit=args.false_hit,
+                    capacity=args.capacity, noise=args.noise, recall=args.recall,
+                    max_detectors=args.max_detectors)
+    except (PlanError, ValueError) as exc:
+        message = " ".join(str(exc).split())
+        print(f"sparseindex plan: {message}", file=sys.stderr)
+        return 2
+    if args.json:
+        print(json.dumps(best.to_dict(), indent=2))
+    else:
+        print(_report(best))
+    return 0
