@@ -13,9 +13,12 @@ Examples
 [0]
 """
 
+from . import model
 from .codes import Codes
+from .model import PlanError
+from .planner import Plan, plan
 from .store import BatchHits, Hits, Store
 
 __version__ = "0.1.0"
 
-__all__ = ["Codes", "Store", "Hits", "BatchHits", "__version__"]
+__all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model", "__version__"]

@@ -18,7 +18,7 @@ from .planner import plan
 
 __all__ = ["add_parser", "run"]
 
-_POSTING_BYTES = 4  # postings are int32 detector ids
+_POSTING_BYTES = 2  # postings are uint16 offsets within a block of detectors (bank.py)
 
 
 def _count(text):
@@ -149,7 +149,7 @@ def _report(best):
         "",
         f"  capacity: stored codes at which false hits per query reach the target",
         f"  at {best.target_capacity:,} codes: {postings:,} postings "
-        f"(~{_fmt_bytes(postings * _POSTING_BYTES)} as int32 ids), "
+        f"(~{_fmt_bytes(postings * _POSTING_BYTES)} as uint16 postings), "
         f"~{best.updates_per_query:,.0f} counter updates per query",
     ]
     return "\n".join(lines)

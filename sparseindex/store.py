@@ -202,6 +202,44 @@ class Store:
         self._next_id = 0
         self._removed_count = 0
         self._local = threading.local()
+        self._plan = None
+
+    @classmethod
+    def for_target(
+        cls, bits, active, *, false_hit, capacity, noise=0.0, recall=0.999, max_detectors=8, seed=None
+    ) -> "Store":
+        """A store configured by :func:`sparseindex.plan` from targets.
+
+        The plan (``store.plan``) keeps the targets so that reports can
+        measure against them. Codes whose weight differs from ``active`` are
+        still accepted; a detector samples ``min(segment, weight)`` bits.
+
+        Raises
+        ------
+        PlanError
+            No configuration meets both targets; the message says which
+            target fails and the best reachable values.
+
+        Examples
+        --------
+        >>> s = Store.for_target(2048, 40, false_hit=1e-6, capacity=100_000, noise=0.2, seed=1)
+        >>> s.plan.false_hit_per_query <= 1e-6 and s.plan.recall >= 0.999
+        True
+        """
+        from .planner import plan as make_plan
+
+        chosen = make_plan(
+            bits, active, false_hit=false_hit, capacity=capacity, noise=noise, recall=recall,
+            max_detectors=max_detectors,
+        )
+        store = cls(bits, threshold=chosen.threshold, segment=chosen.segment, detectors=chosen.detectors, seed=seed)
+        store._plan = chosen
+        return store
+
+    @property
+    def plan(self):
+        """The :class:`~sparseindex.Plan` this store was configured from, or None."""
+        return self._plan
 
     # -- parameters ----------------------------------------------------------
 

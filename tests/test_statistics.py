@@ -72,3 +72,37 @@ def test_recall_of_noisy_copies(segment, threshold, detectors):
     p = reference_recall(active, segment, threshold, detectors, lost)
     ok, msg = within_3_sigma(recalled, n, p)
     assert ok, msg
+
+
+def test_store_built_for_a_target_meets_the_model():
+    """A store from Store.for_target, run on small widths, against the project's own model.
+
+    The model (sparseindex.model) is itself checked against scipy.stats and
+    exact rationals in tests/test_model.py; here the real Store must agree
+    with it within 3 sigma for false hits of random queries and for recall
+    of noisy copies.
+    """
+    from sparseindex import model
+
+    bits, active, noise = 256, 16, 0.25
+    store = Store.for_target(bits, active, false_hit=0.5, capacity=300, noise=noise, recall=0.9, seed=23)
+    chosen = store.plan
+    assert chosen.recall >= 0.9 and chosen.false_hit_per_query <= 0.5
+    codes = Codes.random(3000, bits, active, seed=24)
+    store.add(codes)
+    queries = Codes.random(2000, bits, active, seed=25)
+    p_code = model.false_hit_per_code(bits, active, chosen.segment, chosen.threshold, chosen.detectors)
+    ok, msg = within_3_sigma(len(store.query_many(queries).ids), 3000 * 2000, p_code)
+    assert ok, msg
+    lost = math.ceil(noise * active)
+    rng = np.random.default_rng(26)
+    dense = codes.to_dense()
+    for i in range(len(codes)):
+        on, off = np.flatnonzero(dense[i]), np.flatnonzero(~dense[i])
+        dense[i, rng.choice(on, lost, replace=False)] = False
+        dense[i, rng.choice(off, lost, replace=False)] = True
+    batch = store.query_many(dense)
+    recalled = sum(int(i in set(batch[i].ids.tolist())) for i in range(len(codes)))
+    r = model.recall(active, chosen.segment, chosen.threshold, chosen.detectors, noise=noise)
+    ok, msg = within_3_sigma(recalled, len(codes), r)
+    assert ok, msg
