@@ -234,51 +234,6 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
     return det_indptr, det_bits
 
 
-@kernel
-def build_blocks(det_indptr, det_bits, first_detector, bits, block_span, offset):
-    """Counting sort of (bit, detector) pairs into postings blocks.
-
-    Detector ``k`` of the input gets id ``first_detector + k``. Block
-    boundaries fall on multiples of ``block_span`` in the global detector id
-    space, so a block never spans more than ``block_span`` detectors and its
-    postings fit ``uint16`` offsets from the block's first detector. Returns
-    ``(block_indptr, block_lo, block_hi, post)``: ``block_indptr`` holds
-    positions in ``post`` plus ``offset``; each bit's offsets ascend.
-    """
-    n_det = det_indptr.shape[0] - 1
-    last = first_detector + n_det
-    first_block = first_detector // block_span
-    n_blocks = 0 if n_det == 0 else (last - 1) // block_span - first_block + 1
-    block_lo = np.empty(n_blocks, dtype=np.int64)
-    block_hi = np.empty(n_blocks, dtype=np.int64)
-    for k in range(n_blocks):
-        block_lo[k] = max(first_detector, (first_block + k) * block_span)
-        block_hi[k] = min(last, (first_block + k + 1) * block_span)
-    block_indptr = np.zeros((n_blocks, bits + 1), dtype=np.int64)
-    post = np.empty(det_bits.shape[0], dtype=np.uint16)
-    counts = np.zeros(bits, dtype=np.int64)
-    cursor = np.empty(bits, dtype=np.int64)
-    pos = 0
-    for k in range(n_blocks):
-        d0 = block_lo[k] - first_detector
-        d1 = block_hi[k] - first_detector
-        counts[:] = 0
-        for p in range(det_indptr[d0], det_indptr[d1]):
-            counts[det_bits[p]] += 1
-        for b in range(bits):
-            block_indptr[k, b] = pos + offset
-            cursor[b] = pos
-            pos += counts[b]
-        block_indptr[k, bits] = pos + offset
-        for d in range(d0, d1):
-            o = np.uint16(d - d0)
-            for p in range(det_indptr[d], det_indptr[d + 1]):
-                b = det_bits[p]
-                post[cursor[b]] = o
-                cursor[b] += 1
-    return block_indptr, block_lo, block_hi, post
-
-
 @inline_kernel
 def _row_bits(words, r, out):
     """Set-bit indices of packed row ``r`` into ``out``; returns the count."""
@@ -315,10 +270,13 @@ def _sample_into(row_bits, w, take, seed, code_id, j, out):
 def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed, bits, block_span, offset):
     """Sample and index the detectors of packed rows in one pass, no temporaries.
 
-    Equivalent to ``sample_detectors`` followed by ``build_blocks`` (the
-    same samples, the same blocks) but reads the packed rows twice (count,
-    then fill) instead of materialising every sample: the batch's memory is
-    touched once more, not four times. Row ``i`` of ``words`` becomes store
+    Block boundaries fall on multiples of ``block_span`` in the global
+    detector id space, so a block never spans more than ``block_span``
+    detectors and its postings fit ``uint16`` offsets from its first
+    detector. The samples are those of ``sample_detectors`` (the bank's
+    ``_check`` compares them), but the packed rows are read twice (count,
+    then fill) instead of materialising every sample, so fresh memory is
+    touched once, not four times. Row ``i`` of ``words`` becomes store
     row ``first_row + i``. Returns ``(block_indptr, block_lo, block_hi,
     post, max_sample)``.
     """
