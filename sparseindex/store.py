@@ -149,8 +149,9 @@ class Store:
 
     Notes
     -----
-    Memory per code is ``8 * ceil(bits / 64)`` bytes of packed code, ``4 *
-    detectors * segment`` bytes of postings and 13 bytes of bookkeeping. A
+    Memory per code is ``8 * ceil(bits / 64)`` bytes of packed code, ``2 *
+    detectors * segment`` bytes of postings (uint16) and 5 bytes of
+    bookkeeping (13 once a compaction has dropped removed codes). A
     query costs one counter update per posting of its set bits (about
     ``q * N * D * s / bits``) plus one AND + popcount per hit.
 
