@@ -136,6 +136,20 @@ def row_weights(words):
     return out
 
 
+@inline_kernel
+def _row_bits(words, r, out):
+    """Set-bit indices of packed row ``r`` into ``out``; returns the count."""
+    n = 0
+    for w in range(words.shape[1]):
+        x = words[r, w]
+        while x != np.uint64(0):
+            low = x & (~x + np.uint64(1))
+            out[n] = w * 64 + np.int64(popcount64(low - np.uint64(1)))
+            n += 1
+            x = x ^ low
+    return n
+
+
 @kernel
 def unpack_indices(words, weights):
     """Packed rows -> CSR index lists (``weights`` are the rows' popcounts)."""
@@ -145,14 +159,7 @@ def unpack_indices(words, weights):
         indptr[r + 1] = indptr[r] + weights[r]
     indices = np.empty(indptr[rows], dtype=np.int64)
     for r in range(rows):
-        p = indptr[r]
-        for w in range(words.shape[1]):
-            x = words[r, w]
-            while x != np.uint64(0):
-                low = x & (~x + np.uint64(1))
-                indices[p] = w * 64 + np.int64(popcount64(low - np.uint64(1)))
-                p += 1
-                x = x ^ low
+        _row_bits(words, r, indices[indptr[r] : indptr[r + 1]])
     return indptr, indices
 
 
@@ -232,20 +239,6 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
             for t in range(take):
                 det_bits[out_lo + t] = chosen[t]
     return det_indptr, det_bits
-
-
-@inline_kernel
-def _row_bits(words, r, out):
-    """Set-bit indices of packed row ``r`` into ``out``; returns the count."""
-    n = 0
-    for w in range(words.shape[1]):
-        x = words[r, w]
-        while x != np.uint64(0):
-            low = x & (~x + np.uint64(1))
-            out[n] = w * 64 + np.int64(popcount64(low - np.uint64(1)))
-            n += 1
-            x = x ^ low
-    return n
 
 
 @inline_kernel
