@@ -191,6 +191,26 @@ def random_words(rows, bits, active, seed):
 # ---------------------------------------------------------------------------
 
 
+@inline_kernel
+def _sample_into(row_bits, w, take, seed, code_id, j, out):
+    """Detector ``j``'s sample of a code (see ``sample_detectors``) into ``out[:take]``.
+
+    A partial Fisher-Yates shuffle of the code's ``w`` set bits; with
+    ``take == w`` the sample is the whole code and no random draw is made.
+    """
+    for t in range(w):
+        out[t] = row_bits[t]
+    if take == w:
+        return
+    state = _detector_state(seed, code_id, j)
+    for t in range(take):
+        state, x = _rng_next(state)
+        k = t + np.int64(x % np.uint64(w - t))
+        tmp = out[t]
+        out[t] = out[k]
+        out[k] = tmp
+
+
 @kernel
 def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
     """Sample each code's detector bits.
@@ -226,37 +246,11 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
                 continue
             if scratch.shape[0] < w:
                 scratch = np.empty(w, dtype=np.int64)
-            for t in range(w):
-                scratch[t] = indices[lo + t]
-            state = _detector_state(seed, code_ids[r], j)
-            for t in range(take):
-                state, x = _rng_next(state)
-                k = t + np.int64(x % np.uint64(w - t))
-                tmp = scratch[t]
-                scratch[t] = scratch[k]
-                scratch[k] = tmp
+            _sample_into(indices[lo : lo + w], w, take, seed, code_ids[r], j, scratch)
             chosen = np.sort(scratch[:take])
             for t in range(take):
                 det_bits[out_lo + t] = chosen[t]
     return det_indptr, det_bits
-
-
-@inline_kernel
-def _sample_into(row_bits, w, take, seed, code_id, j, out):
-    """Detector ``j``'s sample of a code (see ``sample_detectors``) into ``out[:take]``."""
-    if take == w:
-        for t in range(w):
-            out[t] = row_bits[t]
-        return
-    for t in range(w):
-        out[t] = row_bits[t]
-    state = _detector_state(seed, code_id, j)
-    for t in range(take):
-        state, x = _rng_next(state)
-        k = t + np.int64(x % np.uint64(w - t))
-        tmp = out[t]
-        out[t] = out[k]
-        out[k] = tmp
 
 
 @kernel
