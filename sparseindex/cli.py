@@ -8,14 +8,22 @@ on bad arguments or bad input (one line on stderr).
 from __future__ import annotations
 
 import argparse
+import importlib
 import sys
 
 from . import __version__
 
+#: Subcommand name -> module (inside this package) with ``add_parser`` and ``run``.
+COMMANDS = {
+    "plan": "._cli_plan",
+}
+
+
+def _module(name):
+    return importlib.import_module(COMMANDS[name], __package__)
+
 
 def build_parser() -> argparse.ArgumentParser:
-    from . import _cli_plan
-
     parser = argparse.ArgumentParser(
         prog="sparseindex",
         description="Store, recall and size stores of sparse binary codes.",
@@ -27,7 +35,8 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"sparseindex {__version__}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
     commands.required = True
-    _cli_plan.add_parser(commands)
+    for name in COMMANDS:
+        _module(name).add_parser(commands)
     return parser
 
 
@@ -43,10 +52,8 @@ def main(argv=None) -> int:
     """
     parser = build_parser()
     args = parser.parse_args(argv)
-    if args.command == "plan":
-        from . import _cli_plan
-
-        return _cli_plan.run(args)
+    if args.command in COMMANDS:
+        return _module(args.command).run(args)
     parser.error(f"unknown command {args.command!r}")  # pragma: no cover - argparse rejects it first
     return 2
 
