@@ -557,3 +557,58 @@ def top_k(overlaps, removed, k, max_overlap):
             out[start[v] + per_value[v]] = r
             per_value[v] += 1
     return out
+
+
+# ---------------------------------------------------------------------------
+# validation of loaded postings
+# ---------------------------------------------------------------------------
+
+
+@kernel
+def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detectors, segment):
+    """Check postings read from a file against the codes they index.
+
+    The caller has already checked the *shape* of the tables (``block_indptr``
+    monotone and inside ``post``; blocks consecutive, each at most one span,
+    together covering ``rows * detectors`` detectors). This kernel reads only
+    and checks, per block: every offset lies inside its block, the postings
+    of each bit strictly ascend, the bit is set in the code that owns the
+    detector, and every detector holds exactly ``min(segment, weight)``
+    postings (``segment < 0``: all of its code's bits).
+
+    Returns ``(problem, where)``: ``problem`` 0 when all holds, else 1
+    (offset outside its block; ``where`` = position in ``post``), 2 (not
+    ascending; position), 3 (bit not set in the owner's code; position) or
+    4 (wrong number of postings; ``where`` = detector id).
+    """
+    n_blocks = block_indptr.shape[0]
+    bits = block_indptr.shape[1] - 1
+    widest = 0
+    for k in range(n_blocks):
+        widest = max(widest, block_hi[k] - block_lo[k])
+    counts = np.zeros(widest, dtype=np.int64)
+    for k in range(n_blocks):
+        lo = block_lo[k]
+        size = block_hi[k] - lo
+        for b in range(bits):
+            word = b >> 6
+            shift = np.uint64(b & 63)
+            prev = -1
+            for p in range(block_indptr[k, b], block_indptr[k, b + 1]):
+                off = np.int64(post[p])
+                if off >= size:
+                    return 1, p
+                if off <= prev:
+                    return 2, p
+                prev = off
+                row = (lo + off) // detectors
+                if (words[row, word] >> shift) & np.uint64(1) == 0:
+                    return 3, p
+                counts[off] += 1
+        for d in range(size):
+            w = weights[(lo + d) // detectors]
+            want = w if segment < 0 or segment > w else segment
+            if counts[d] != want:
+                return 4, lo + d
+            counts[d] = 0
+    return 0, 0

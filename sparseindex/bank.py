@@ -93,10 +93,18 @@ class DetectorBank:
     def append(self, words: np.ndarray, code_ids: np.ndarray) -> None:
         """Sample and index the detectors of new rows (packed words + their ids).
 
+        :meth:`prepare_append` then :meth:`commit_append`. O(batch postings).
+        """
+        self.commit_append(self.prepare_append(words, code_ids))
+
+    def prepare_append(self, words: np.ndarray, code_ids: np.ndarray) -> "PendingAppend":
+        """Everything an append computes, without changing what readers see.
+
         Wraps kernel ``build_blocks_from_words``, in chunks of
-        ``APPEND_CHUNK_ROWS`` rows. Everything is computed and allocated
-        before the bank changes, so an error (MemoryError included) leaves
-        it as it was. O(batch postings).
+        ``APPEND_CHUNK_ROWS`` rows, and writes the new postings past the
+        used part of the buffer (or into a larger copy of it), where no
+        query looks. An error (MemoryError included) leaves the bank as it
+        was. Only one thread may prepare or commit at a time.
         """
         rows = words.shape[0]
         if (self.rows + rows) * self.detectors > MAX_DETECTORS_TOTAL:
@@ -140,13 +148,41 @@ class DetectorBank:
         for p in pieces:
             buffer[pos : pos + p[3].shape[0]] = p[3]
             pos += p[3].shape[0]
-        # commit
-        self._post = buffer
-        self._block_indptr, self._block_lo, self._block_hi = block_indptr, block_lo, block_hi
-        self._used = need
-        self.rows += rows
-        self._max_sample = max_sample
+        return PendingAppend(self.rows, rows, buffer, block_indptr, block_lo, block_hi, need, max_sample)
+
+    def commit_append(self, pending: "PendingAppend") -> None:
+        """Make a prepared append visible (hold the store's write lock).
+
+        Swaps in the new tables and merges blocks; O(postings merged), which
+        is O(span) at most and O(log span) per posting over time.
+        """
+        if pending.base_rows != self.rows:
+            raise RuntimeError("the bank changed between prepare_append and commit_append")
+        self._post = pending.buffer
+        self._block_indptr, self._block_lo, self._block_hi = pending.block_indptr, pending.block_lo, pending.block_hi
+        self._used = pending.used
+        self.rows += pending.rows
+        self._max_sample = pending.max_sample
         self._merge_blocks()
+
+    @classmethod
+    def from_arrays(cls, bits, threshold, segment, detectors, seed, block_span, *, rows, postings, block_indptr,
+                    block_lo, block_hi, max_sample) -> "DetectorBank":
+        """A bank over arrays that were validated elsewhere (a loaded file).
+
+        The arrays are adopted, not copied: they may be memory-mapped.
+        """
+        bank = cls(bits, threshold, segment, detectors, seed, block_span)
+        bank.rows = rows
+        bank._post = postings
+        bank._used = postings.shape[0]
+        bank._block_indptr, bank._block_lo, bank._block_hi = block_indptr, block_lo, block_hi
+        bank._max_sample = max_sample
+        return bank
+
+    def arrays(self):
+        """``(postings, block_indptr, block_lo, block_hi)``, used part only (views)."""
+        return self._post[: self._used], self._block_indptr, self._block_lo, self._block_hi
 
     def _merge_blocks(self) -> None:
         """Keep few blocks: one per full span, O(log) in the span still filling.
@@ -362,6 +398,17 @@ class DetectorBank:
             want = det_of[order]
             got = np.concatenate([self.postings_of(b) for b in range(self.bits)])
             assert np.array_equal(want, got), f"postings differ from the detector samples: {state}"
+
+
+class PendingAppend:
+    """What :meth:`DetectorBank.prepare_append` computed, waiting for commit."""
+
+    __slots__ = ("base_rows", "rows", "buffer", "block_indptr", "block_lo", "block_hi", "used", "max_sample")
+
+    def __init__(self, base_rows, rows, buffer, block_indptr, block_lo, block_hi, used, max_sample):
+        self.base_rows, self.rows, self.buffer = base_rows, rows, buffer
+        self.block_indptr, self.block_lo, self.block_hi = block_indptr, block_lo, block_hi
+        self.used, self.max_sample = used, max_sample
 
 
 def _split_ranges(ranges, tasks):

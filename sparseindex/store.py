@@ -12,15 +12,19 @@ rows, after which a sorted ``row -> id`` table maps between them.
 
 from __future__ import annotations
 
+import os
 import threading
+from contextlib import contextmanager
 from numbers import Integral
 
 import numpy as np
 
-from . import _kernels
+from . import _kernels, _persist
 from ._config import PARALLEL_LOCK
+from ._locks import ReadWriteLock
 from .bank import BLOCK_SPAN, DetectorBank
 from .codes import Codes, as_code, as_codes
+from .errors import ReadOnlyStoreError
 
 __all__ = ["Store", "Hits", "BatchHits"]
 
@@ -155,8 +159,12 @@ class Store:
     query costs one counter update per posting of its set bits (about
     ``q * N * D * s / bits``) plus one AND + popcount per hit.
 
-    Not safe for mutation (``add``, ``remove``, ``compact``) concurrent with
-    queries from other threads; concurrent queries are safe.
+    Thread safety: one Store may serve many threads. Queries hold a
+    readers–writer lock shared and run side by side (kernels release the
+    GIL). ``add``, ``remove``, ``compact`` and ``save`` take turns on a
+    writer mutex and do their work while queries go on; only the short
+    commit step holds the lock exclusively, so a query sees each call's
+    effect entirely or not at all (never half a batch).
 
     Examples
     --------
@@ -204,6 +212,10 @@ class Store:
         self._removed_count = 0
         self._local = threading.local()
         self._plan = None
+        self._rw = ReadWriteLock()
+        self._writer = threading.Lock()
+        self._read_only = None  # or the reason, e.g. "memory-mapped from 'x.sidx'"
+        self._mapping = None  # keeps a memory-mapped file open
 
     @classmethod
     def for_target(
@@ -267,22 +279,41 @@ class Store:
 
     @property
     def nbytes(self) -> int:
-        """Bytes held by codes, postings and bookkeeping (capacity included)."""
+        """Bytes held by codes, postings and bookkeeping (capacity included).
+
+        For a memory-mapped store this counts the mapped file's arrays too,
+        although the operating system pages them in and out as needed.
+        """
+        with self._rw.reading():
+            return self._nbytes()
+
+    def _nbytes(self) -> int:
         total = self._words.nbytes + self._weights.nbytes + self._removed.nbytes + self._bank.nbytes
         if self._row_ids is not None:
             total += self._row_ids.nbytes
         return total
 
     def __len__(self) -> int:
-        return self._rows - self._removed_count
+        with self._rw.reading():
+            return self._rows - self._removed_count
 
     def __contains__(self, code_id) -> bool:
         if isinstance(code_id, (bool, np.bool_)) or not isinstance(code_id, (Integral, np.integer)):
             return False
-        row = self._row_of(int(code_id))
-        return row >= 0 and not self._removed[row]
+        with self._rw.reading():
+            row = self._row_of(int(code_id))
+            return row >= 0 and not self._removed[row]
+
+    @property
+    def read_only(self) -> bool:
+        """True when the store refuses changes (a memory-mapped load, by default)."""
+        return self._read_only is not None
 
     def __repr__(self) -> str:
+        with self._rw.reading():
+            return self._repr()
+
+    def _repr(self) -> str:
         return (
             f"Store(bits={self._bits}, threshold={self._threshold}, segment={self._segment}, "
             f"detectors={self._detectors}, items={len(self)}, removed={self._removed_count}, "
@@ -340,6 +371,17 @@ class Store:
 
     # -- mutation -----------------------------------------------------------
 
+    @contextmanager
+    def _mutating(self, what: str):
+        """One mutation at a time; refused on a read-only store."""
+        if self._read_only is not None:
+            raise ReadOnlyStoreError(
+                f"{what}: this store is read-only ({self._read_only}); "
+                "load it with writable=True to change it"
+            )
+        with self._writer:
+            yield
+
     def add(self, codes) -> np.ndarray:
         """Store a batch of codes; return their new ids (int64).
 
@@ -378,6 +420,12 @@ class Store:
                 f"add: row {r} has {int(weights[r])} set bits, fewer than threshold={self._threshold}: "
                 "no detector could ever fire for it"
             )
+        with self._mutating("add"):
+            return self._add(batch, weights, m)
+
+    def _add(self, batch: Codes, weights: np.ndarray, m: int) -> np.ndarray:
+        # Prepare everything where no query looks (new buffers, or the
+        # unused capacity past ``_rows``), then commit under the write lock.
         ids = np.arange(self._next_id, self._next_id + m, dtype=np.int64)
         need = self._rows + m
         words, wts, removed, row_ids = self._words, self._weights, self._removed, self._row_ids
@@ -400,16 +448,18 @@ class Store:
                 row_ids = _grown(row_ids, capacity, self._rows)
         elif row_ids is not None and need > row_ids.shape[0]:
             row_ids = _grown(row_ids, words.shape[0], self._rows)
-        self._bank.append(batch._words, ids)
+        pending = self._bank.prepare_append(batch._words, ids)
         if not adopt:
             words[self._rows : need] = batch._words
             wts[self._rows : need] = weights
             removed[self._rows : need] = False
         if row_ids is not None:
             row_ids[self._rows : need] = ids
-        self._words, self._weights, self._removed, self._row_ids = words, wts, removed, row_ids
-        self._rows = need
-        self._next_id += m
+        with self._rw.writing():
+            self._bank.commit_append(pending)
+            self._words, self._weights, self._removed, self._row_ids = words, wts, removed, row_ids
+            self._rows = need
+            self._next_id += m
         return ids
 
     def remove(self, ids) -> None:
@@ -429,34 +479,39 @@ class Store:
         ...
         KeyError: 'remove: id 0 was removed'
         """
-        rows = self._live_rows_of(ids, "remove")
-        uniq, counts = np.unique(rows, return_counts=True)
-        if (counts > 1).any():
-            dup_row = int(uniq[np.flatnonzero(counts > 1)[0]])
-            dup_id = int(self._ids_of_rows(np.array([dup_row]))[0])
-            raise KeyError(f"remove: id {dup_id} appears more than once in one call")
-        self._removed[rows] = True
-        self._removed_count += rows.shape[0]
+        with self._mutating("remove"):
+            rows = self._live_rows_of(ids, "remove")
+            uniq, counts = np.unique(rows, return_counts=True)
+            if (counts > 1).any():
+                dup_row = int(uniq[np.flatnonzero(counts > 1)[0]])
+                dup_id = int(self._ids_of_rows(np.array([dup_row]))[0])
+                raise KeyError(f"remove: id {dup_id} appears more than once in one call")
+            with self._rw.writing():
+                self._removed[rows] = True
+                self._removed_count += rows.shape[0]
 
     def compact(self) -> None:
         """Reclaim removed rows and merge the postings into one block.
 
-        Ids do not change. O(stored codes + postings).
+        Ids do not change. O(stored codes + postings); queries go on
+        meanwhile against the old arrays, and see the new ones at once.
         """
-        live = ~self._removed[: self._rows]
-        rows_left = int(live.sum())
-        words = np.ascontiguousarray(self._words[: self._rows][live])
-        wts = self._weights[: self._rows][live].copy()
-        ids_kept = self._ids_of_rows(np.flatnonzero(live))
-        identity = rows_left == self._next_id  # nothing was ever dropped
-        bank = self._bank.rebuilt(words, ids_kept)
-        self._bank = bank
-        self._words, self._weights = words, wts
-        self._removed = np.zeros(rows_left, dtype=bool)
-        self._row_ids = None if identity else ids_kept
-        self._rows = rows_left
-        self._removed_count = 0
-        self._local = threading.local()
+        with self._mutating("compact"):
+            live = ~self._removed[: self._rows]
+            rows_left = int(live.sum())
+            words = np.ascontiguousarray(self._words[: self._rows][live])
+            wts = self._weights[: self._rows][live].copy()
+            ids_kept = self._ids_of_rows(np.flatnonzero(live))
+            identity = rows_left == self._next_id  # nothing was ever dropped
+            bank = self._bank.rebuilt(words, ids_kept)
+            with self._rw.writing():
+                self._bank = bank
+                self._words, self._weights = words, wts
+                self._removed = np.zeros(rows_left, dtype=bool)
+                self._row_ids = None if identity else ids_kept
+                self._rows = rows_left
+                self._removed_count = 0
+                self._local = threading.local()
 
     # -- reading ----------------------------------------------------------
 
@@ -469,8 +524,9 @@ class Store:
         >>> s.get([1, 0]).to_indices()[0].tolist()
         [5]
         """
-        rows = self._live_rows_of(ids, "get")
-        return Codes(self._words[rows].copy(), self._bits)
+        with self._rw.reading():
+            rows = self._live_rows_of(ids, "get")
+            return Codes(self._words[rows].copy(), self._bits)
 
     def detector_bits(self, code_id) -> np.ndarray:
         """The bits each detector of a stored code sampled, shape (detectors, sample).
@@ -485,10 +541,13 @@ class Store:
         >>> s.detector_bits(0).shape
         (2, 3)
         """
-        row = self._live_rows_of(code_id, "detector_bits")[0]
-        code_id = int(self._ids_of_rows(np.array([row]))[0])
-        indptr, indices = _kernels.unpack_indices(self._words[row : row + 1], self._weights[row : row + 1].astype(np.int64))
-        det_indptr, det_bits = self._bank.sample(indptr, indices, np.array([code_id]))
+        with self._rw.reading():
+            row = self._live_rows_of(code_id, "detector_bits")[0]
+            code_id = int(self._ids_of_rows(np.array([row]))[0])
+            indptr, indices = _kernels.unpack_indices(
+                self._words[row : row + 1], self._weights[row : row + 1].astype(np.int64)
+            )
+            det_indptr, det_bits = self._bank.sample(indptr, indices, np.array([code_id]))
         return det_bits.reshape(self._detectors, -1)
 
     def _counters(self) -> np.ndarray:
@@ -515,13 +574,14 @@ class Store:
         """
         q = as_code(code, self._bits, what="query")
         min_ov = _check_min_overlap(min_overlap)
-        if self._rows == 0:
-            return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
         q_bits = q._csr()[1]
-        rows, overlaps = self._bank.scan_one(
-            q_bits, q._words[0], self._words, self._removed, min_ov, self._counters()
-        )
-        ids = self._ids_of_rows(rows)
+        with self._rw.reading():
+            if self._rows == 0:
+                return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
+            rows, overlaps = self._bank.scan_one(
+                q_bits, q._words[0], self._words, self._removed, min_ov, self._counters()
+            )
+            ids = self._ids_of_rows(rows)
         order = np.lexsort((ids, -overlaps))
         return Hits(ids[order], overlaps[order])
 
@@ -538,13 +598,14 @@ class Store:
         batch = as_codes(codes, self._bits, what="query_many")
         min_ov = _check_min_overlap(min_overlap)
         n = len(batch)
-        if self._rows == 0 or n == 0:
-            return BatchHits(np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64))
         q_indptr, q_bits = batch._csr()
-        counts, rows, overlaps = self._bank.scan_many(
-            q_indptr, q_bits, batch._words, self._words, self._removed, min_ov
-        )
-        ids = self._ids_of_rows(rows)
+        with self._rw.reading():
+            if self._rows == 0 or n == 0:
+                return BatchHits(np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64))
+            counts, rows, overlaps = self._bank.scan_many(
+                q_indptr, q_bits, batch._words, self._words, self._removed, min_ov
+            )
+            ids = self._ids_of_rows(rows)
         which = np.repeat(np.arange(n, dtype=np.int64), counts)
         order = np.lexsort((ids, -overlaps, which))
         indptr = np.zeros(n + 1, dtype=np.int64)
@@ -567,20 +628,130 @@ class Store:
         """
         q = as_code(code, self._bits, what="nearest")
         k = _check_int("k", k, 0)
-        if self._rows == 0 or k == 0:
-            return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
-        with PARALLEL_LOCK:
-            overlaps = _kernels.overlaps_with_all(q._words[0], self._words, self._rows)
-        rows = _kernels.top_k(overlaps, self._removed, k, self._bits)
-        return Hits(self._ids_of_rows(rows), overlaps[rows])
+        with self._rw.reading():
+            if self._rows == 0 or k == 0:
+                return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
+            with PARALLEL_LOCK:
+                overlaps = _kernels.overlaps_with_all(q._words[0], self._words, self._rows)
+            rows = _kernels.top_k(overlaps, self._removed, k, self._bits)
+            return Hits(self._ids_of_rows(rows), overlaps[rows])
 
     def __iter__(self):
         raise TypeError("a Store is not iterable; use store.ids() and store.get(ids)")
 
     def ids(self) -> np.ndarray:
         """Ids of every stored (not removed) code, ascending."""
-        rows = np.flatnonzero(~self._removed[: self._rows])
-        return self._ids_of_rows(rows)
+        with self._rw.reading():
+            rows = np.flatnonzero(~self._removed[: self._rows])
+            return self._ids_of_rows(rows)
+
+    # -- persistence ------------------------------------------------------
+
+    def save(self, path) -> None:
+        """Write the store to ``path`` atomically and durably.
+
+        The file (format in ``docs/format.md``) is written to a temporary
+        file in the same directory, flushed with ``fsync``, renamed over
+        ``path`` and the directory is ``fsync``-ed. On any error the error
+        is raised, the previous file at ``path`` is left as it was and the
+        temporary file is removed; a failed ``fsync`` is never retried.
+        Queries go on while it writes; mutations wait. O(file size).
+
+        Examples
+        --------
+        >>> import os, tempfile
+        >>> s = Store(bits=64, threshold=2, seed=3); _ = s.add([[1, 2, 3], [7, 8]])
+        >>> path = os.path.join(tempfile.mkdtemp(), "depot.sidx")
+        >>> s.save(path)
+        >>> Store.load(path).query([1, 2]).ids.tolist()
+        [0]
+        """
+        with self._writer:
+            state = self._state()
+            _persist.save_file(path, state)
+
+    @classmethod
+    def load(cls, path, *, mmap=False, writable=None) -> "Store":
+        """Open a store saved by :meth:`save`.
+
+        Every section is checked (CRC32s, counts against the file size,
+        offsets, ids and bits in range, padding zero, postings consistent with
+        the codes) before any of it is used; a bad file raises
+        :class:`~sparseindex.errors.StoreFormatError` naming the section.
+        Nothing larger than the file is allocated.
+
+        Parameters
+        ----------
+        mmap : bool
+            Serve from a memory mapping of the file instead of reading it
+            into memory; the OS pages it in as queries touch it and shares
+            it between processes. The check reads the file through once.
+        writable : bool or None
+            Allow ``add``/``remove``/``compact``. Default: True for an
+            in-memory load, False for a memory-mapped one. Changes to a
+            memory-mapped store are private (copy-on-write); the file
+            changes only by ``save``. Do not truncate or overwrite a file in
+            place while it is mapped (``save`` replaces it, which is safe).
+
+        Examples
+        --------
+        >>> import os, tempfile
+        >>> s = Store(bits=64, threshold=2, seed=3); _ = s.add([[1, 2, 3]])
+        >>> path = os.path.join(tempfile.mkdtemp(), "depot.sidx"); s.save(path)
+        >>> ro = Store.load(path, mmap=True)
+        >>> ro.read_only, ro.query([1, 2, 3]).overlaps.tolist()
+        (True, [3])
+        >>> ro.add([[4, 5]])
+        Traceback (most recent call last):
+        ...
+        sparseindex.errors.ReadOnlyStoreError: add: this store is read-only (memory-mapped); load it with writable=True to change it
+        """
+        if not isinstance(mmap, (bool, np.bool_)):
+            raise TypeError(f"mmap={mmap!r} must be True or False")
+        if writable is None:
+            writable = not mmap
+        elif not isinstance(writable, (bool, np.bool_)):
+            raise TypeError(f"writable={writable!r} must be True, False or None")
+        state, owner = _persist.read_file(path, mmap=bool(mmap))
+        store = cls._from_state(state)
+        store._mapping = owner if mmap else None
+        if not writable:
+            store._read_only = "memory-mapped" if mmap else "opened with writable=False"
+        return store
+
+    def __reduce__(self):
+        # a pickle holds the same validated file format, never raw internals
+        with self._writer:
+            return (_restore_pickled, (_persist.dumps(self._state()),))
+
+    def _state(self) -> "_persist.StoreState":
+        """The persistent state; call with the writer mutex held."""
+        n = self._rows
+        post, block_indptr, block_lo, block_hi = self._bank.arrays()
+        return _persist.StoreState(
+            bits=self._bits, threshold=self._threshold, segment=self._segment, detectors=self._detectors,
+            seed=self._seed, block_span=self._bank.block_span,
+            plan=None if self._plan is None else self._plan.to_dict(),
+            rows=n, next_id=self._next_id, removed_count=self._removed_count,
+            words=self._words[:n], removed=self._removed[:n],
+            row_ids=None if self._row_ids is None else self._row_ids[:n],
+            block_lo=block_lo, block_hi=block_hi, block_indptr=block_indptr, postings=post,
+        )
+
+    @classmethod
+    def _from_state(cls, state: "_persist.StoreState") -> "Store":
+        store = cls(state.bits, threshold=state.threshold, segment=state.segment, detectors=state.detectors,
+                    seed=state.seed)
+        store._bank = DetectorBank.from_arrays(
+            state.bits, state.threshold, state.segment, state.detectors, state.seed, state.block_span,
+            rows=state.rows, postings=state.postings, block_indptr=state.block_indptr,
+            block_lo=state.block_lo, block_hi=state.block_hi, max_sample=state.max_sample,
+        )
+        store._words, store._weights, store._removed = state.words, state.weights, state.removed
+        store._row_ids = state.row_ids
+        store._rows, store._next_id, store._removed_count = state.rows, state.next_id, state.removed_count
+        store._plan = state.plan
+        return store
 
     # -- invariants -------------------------------------------------------
 
@@ -590,7 +761,11 @@ class Store:
         ``deep`` also recomputes every detector sample and compares it with
         the postings (O(N · D · s)); for tests.
         """
-        state = repr(self)
+        with self._rw.reading():
+            self._check_unlocked(deep)
+
+    def _check_unlocked(self, deep: bool) -> None:
+        state = self._repr()
         n = self._rows
         assert self._words.shape[0] >= n and self._weights.shape[0] >= n and self._removed.shape[0] >= n, state
         words = self._words[:n]
@@ -613,6 +788,10 @@ class Store:
             indptr, indices = _kernels.unpack_indices(words, self._weights[:n].astype(np.int64))
             expected = self._bank.sample(indptr, indices, self._ids_of_rows(np.arange(n)))
         self._bank._check(expected)
+
+
+def _restore_pickled(data: bytes) -> Store:
+    return Store._from_state(_persist.read_bytes(data))
 
 
 def _grown(array: np.ndarray, capacity: int, used: int) -> np.ndarray:
