@@ -15,10 +15,12 @@ Examples
 
 from . import model
 from .codes import Codes
+from .errors import FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
 from .model import PlanError
 from .planner import Plan, plan
 from .store import BatchHits, Hits, Store
 
 __version__ = "0.1.0"
 
-__all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model", "__version__"]
+__all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model",
+    "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "__version__"]
