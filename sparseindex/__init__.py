@@ -15,6 +15,7 @@ Examples
 
 from . import model
 from .codes import Codes
+from .dedupe import DedupeSummary, dedupe
 from .errors import FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
 from .model import PlanError
 from .planner import Plan, plan
@@ -23,4 +24,4 @@ from .store import BatchHits, Hits, Store
 __version__ = "0.1.0"
 
 __all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model",
-    "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "__version__"]
+    "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "dedupe", "DedupeSummary", "__version__"]

@@ -1,0 +1,509 @@
+"""Banded min-wise hashing of set bits: signatures, band keys, the S-curve, the band choice.
+
+Published methods
+-----------------
+* Min-wise hashing: Broder, "On the resemblance and containment of
+  documents" (1997). For a random permutation of the bit positions, the
+  smallest permuted position of code A equals that of code B with
+  probability exactly J(A, B) = |A ∩ B| / |A ∪ B|.
+* Banding: Leskovec, Rajaraman & Ullman, *Mining of Massive Datasets*,
+  ch. 3 (§3.4). ``bands * rows`` min-hashes are cut into ``bands`` groups
+  of ``rows``; two codes become a *candidate pair* when all ``rows``
+  min-hashes of at least one band agree, which happens with probability
+  ``1 - (1 - J**rows) ** bands`` (the S-curve).
+
+Here a "permutation" is the seeded bijective hash
+``h_k(x) = mix64(salt_k ^ mix64(x))`` (``mix64`` is the splitmix64
+finaliser in ``_kernels``): no two bits of one code ever tie, so the
+agreement probability is J as for a true permutation. A band's ``rows``
+minima are folded into one 64-bit key; codes that share a key in some band
+are candidates. Two different tuples of minima may fold to one key with
+probability 2**-64, which can only add a candidate, never lose one.
+
+Every candidate is then verified exactly on the packed codes (AND +
+popcount), so what leaves this module is exact: precision is 1 and the only
+uncertainty is which true pairs the bands missed, which :func:`s_curve`
+predicts.
+
+Kernels here compute only (arrays in, arrays out, no validation); the
+wrappers below and :mod:`sparseindex.dedupe` validate.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+from numba import prange
+
+from . import _kernels
+from ._config import PARALLEL_LOCK, kernel, parallel_kernel, thread_count
+from ._kernels import _mix64, popcount64
+
+__all__ = [
+    "s_curve",
+    "jaccard_floor",
+    "bands_for_recall",
+    "BandChoice",
+    "choose_bands",
+    "similarity_moments",
+    "hash_salts",
+    "band_keys",
+    "candidate_pairs",
+    "bit_usage",
+    "index_seconds",
+    "banding_seconds",
+    "COST",
+]
+
+_GOLDEN = 0x9E3779B97F4A7C15
+_MASK64 = 0xFFFFFFFFFFFFFFFF
+
+#: Most min-hashes per code the automatic choice considers (bands * rows).
+MAX_HASHES = 1024
+#: Most rows per band the automatic choice considers.
+MAX_ROWS = 16
+#: Codes per signature chunk (bounds temporaries; one progress step each).
+SIGNATURE_CHUNK = 1 << 16
+#: Candidate pairs verified per kernel call (bounds the overlap buffer).
+VERIFY_CHUNK = 1 << 24
+
+#: Cost constants of the work model, seconds per unit of work on one core,
+#: measured on the project's 2-core machine (AMD EPYC, numba 0.68) with
+#: 2048-bit codes; only their ratios matter for the choices made with them.
+#: ``hash``: one (set bit, hash function) evaluation of the signatures;
+#: ``key``: one band key sorted and scanned (per code and band, 10^6 keys);
+#: ``pair``: one candidate pair verified (random rows, AND + popcount);
+#: ``posting``: one counter update of the exact index's scan-count;
+#: ``add``: one set bit indexed by ``Store.add``.
+COST = {
+    "hash": 1.3e-9,
+    "key": 1.3e-7,
+    "pair": 6.0e-8,
+    "posting": 2.2e-9,
+    "add": 2.5e-8,
+}
+
+
+# ---------------------------------------------------------------------------
+# analytic side: S-curve, Jaccard floor, band choice
+# ---------------------------------------------------------------------------
+
+
+def s_curve(similarity, bands: int, rows: int):
+    """Chance that a pair of Jaccard similarity ``s`` becomes a candidate.
+
+    ``1 - (1 - s**rows) ** bands`` (Mining of Massive Datasets, §3.4),
+    computed as ``-expm1(bands * log1p(-s**rows))`` so that values near 0
+    and near 1 keep their digits. Accepts a scalar or an array.
+
+    Examples
+    --------
+    >>> round(float(s_curve(0.5, bands=20, rows=5)), 3)
+    0.47
+    """
+    s = np.asarray(similarity, dtype=np.float64)
+    p = s**rows
+    with np.errstate(divide="ignore"):
+        out = -np.expm1(bands * np.log1p(-p))
+    out = np.where(p >= 1.0, 1.0, out)
+    return float(out) if out.ndim == 0 else out
+
+
+def jaccard_floor(min_overlap: int, weight_a: int, weight_b: int) -> float:
+    """Smallest Jaccard similarity of two codes with overlap >= ``min_overlap``.
+
+    J = z / (|A| + |B| - z) increases with the overlap z, so the floor is
+    ``m / (|A| + |B| - m)``; 0 when a code is lighter than ``m`` (no such
+    pair exists).
+
+    Examples
+    --------
+    >>> round(jaccard_floor(32, 40, 40), 4)
+    0.6667
+    """
+    if weight_a < min_overlap or weight_b < min_overlap:
+        return 0.0
+    return min_overlap / (weight_a + weight_b - min_overlap)
+
+
+def bands_for_recall(similarity: float, rows: int, recall: float) -> int | None:
+    """Fewest bands of ``rows`` rows giving candidate chance >= ``recall`` at ``similarity``.
+
+    None when no finite number does (similarity 0 or recall 1).
+
+    Examples
+    --------
+    >>> bands_for_recall(2 / 3, rows=3, recall=0.99)
+    14
+    """
+    p = similarity**rows
+    if p >= 1.0:
+        return 1
+    if p <= 0.0 or recall >= 1.0:
+        return None
+    b = max(1, math.ceil(math.log1p(-recall) / math.log1p(-p)))
+    while s_curve(similarity, b, rows) < recall:  # guard the ceil against rounding
+        b += 1
+    return b
+
+
+@dataclass(frozen=True)
+class BandChoice:
+    """Bands chosen for a target, with the work they are predicted to cost.
+
+    ``recall`` is the predicted candidate chance of the hardest true pair
+    (at ``worst_jaccard``); ``candidates`` the expected number of candidate
+    pairs verified (band collisions summed over bands); ``seconds`` the
+    work model's time on this machine's threads.
+    """
+
+    bands: int
+    rows: int
+    worst_jaccard: float
+    recall: float
+    candidates: float
+    seconds: float
+
+    @property
+    def hashes(self) -> int:
+        """Min-hashes per code (bands * rows)."""
+        return self.bands * self.rows
+
+
+def banding_seconds(bands, rows, *, codes, set_bits, moment, threads) -> tuple[float, float]:
+    """Work model of banding: (expected candidate pairs, predicted seconds).
+
+    Signatures cost ``set_bits * bands * rows`` hash evaluations (parallel),
+    band keys ``codes * bands`` sorted keys, and each band verifies
+    ``C(codes, 2) * E[J**rows]`` pairs on average (``moment``: that mean
+    over random pairs of the data).
+    """
+    pairs = codes * (codes - 1) / 2.0
+    candidates = bands * pairs * moment
+    seconds = (
+        COST["hash"] * set_bits * bands * rows / threads
+        + COST["key"] * codes * bands
+        + COST["pair"] * candidates / threads
+    )
+    return candidates, seconds
+
+
+def choose_bands(worst_jaccard, recall, *, codes, set_bits, moments, threads=None) -> BandChoice | None:
+    """The (bands, rows) of least predicted work meeting ``recall`` at ``worst_jaccard``.
+
+    For each ``rows`` in 1..``MAX_ROWS`` the fewest bands reaching the
+    target (:func:`bands_for_recall`) are taken, then the pair of least
+    :func:`banding_seconds`. ``moments[r - 1]`` is E[J**r] over random pairs
+    of the data (:func:`similarity_moments`). None when no choice within
+    ``MAX_HASHES`` min-hashes per code reaches the target.
+
+    Examples
+    --------
+    >>> m = [1.0e-2, 2.2e-4, 6.3e-6, 2.1e-7, 8.5e-9, 4.0e-10]  # random 40-of-2048 codes
+    >>> c = choose_bands(2 / 3, 0.99, codes=10**6, set_bits=4 * 10**7, moments=m, threads=2)
+    >>> (c.bands, c.rows, c.recall >= 0.99)
+    (14, 3, True)
+    """
+    threads = threads or thread_count()
+    best = None
+    for rows in range(1, min(MAX_ROWS, len(moments)) + 1):
+        bands = bands_for_recall(worst_jaccard, rows, recall)
+        if bands is None or bands * rows > MAX_HASHES:
+            continue
+        candidates, seconds = banding_seconds(
+            bands, rows, codes=codes, set_bits=set_bits, moment=moments[rows - 1], threads=threads
+        )
+        choice = BandChoice(bands, rows, worst_jaccard, s_curve(worst_jaccard, bands, rows), candidates, seconds)
+        if best is None or choice.seconds < best.seconds:
+            best = choice
+    return best
+
+
+def similarity_moments(words, weights, *, max_rows=MAX_ROWS, samples=200_000, seed=0) -> np.ndarray:
+    """E[J**r] for r = 1..``max_rows`` over random distinct pairs of rows.
+
+    Every pair when there are at most ``samples`` of them, else a seeded
+    sample of ``samples`` pairs. Feeds the expected candidate count of the
+    work model. O(samples · words per code).
+
+    Examples
+    --------
+    >>> w = np.array([[0b0111], [0b1110]], dtype=np.uint64)
+    >>> similarity_moments(w, np.array([3, 3]), max_rows=2).tolist()
+    [0.5, 0.25]
+    """
+    n = words.shape[0]
+    if n < 2:
+        return np.zeros(max_rows)
+    total = n * (n - 1) // 2
+    if total <= samples:
+        lo, hi = np.triu_indices(n, k=1)
+    else:
+        rng = np.random.default_rng(seed)
+        lo = rng.integers(0, n, size=samples)
+        hi = rng.integers(0, n - 1, size=samples)
+        hi += hi >= lo
+    lo = lo.astype(np.int64)
+    hi = hi.astype(np.int64)
+    ov = pair_overlaps(words, lo, hi).astype(np.float64)
+    union = weights[lo].astype(np.float64) + weights[hi] - ov
+    j = np.divide(ov, union, out=np.zeros_like(ov), where=union > 0)
+    powers = j[None, :] ** np.arange(1, max_rows + 1)[:, None]
+    return powers.mean(axis=1)
+
+
+def hash_salts(seed: int, count: int) -> np.ndarray:
+    """``count`` uint64 salts of the min-hash functions, from ``seed`` (splitmix64 stream).
+
+    Examples
+    --------
+    >>> a = hash_salts(7, 3); b = hash_salts(7, 5)
+    >>> bool((a == b[:3]).all()), a.dtype.name
+    (True, 'uint64')
+    """
+    out = np.empty(count, dtype=np.uint64)
+    state = int(seed) & _MASK64
+    for k in range(count):
+        state = (state + _GOLDEN) & _MASK64
+        out[k] = _mix64(np.uint64(state))
+    return out
+
+
+# ---------------------------------------------------------------------------
+# kernels
+# ---------------------------------------------------------------------------
+
+
+@kernel
+def pair_overlaps(words, lo, hi):
+    """Exact overlap (AND + popcount) of rows ``lo[t]`` and ``hi[t]``."""
+    out = np.empty(lo.shape[0], dtype=np.int64)
+    for t in range(lo.shape[0]):
+        a = words[lo[t]]
+        b = words[hi[t]]
+        total = 0
+        for w in range(a.shape[0]):
+            total += popcount64(a[w] & b[w])
+        out[t] = total
+    return out
+
+
+@parallel_kernel
+def band_keys_kernel(indptr, indices, salts, bands, rows):
+    """Band keys of CSR codes: ``keys[j, i]`` folds code i's minima of hashes j*rows .. j*rows+rows-1."""
+    n = indptr.shape[0] - 1
+    keys = np.empty((bands, n), dtype=np.uint64)
+    top = np.uint64(0xFFFFFFFFFFFFFFFF)
+    for i in prange(n):
+        a = indptr[i]
+        w = indptr[i + 1] - a
+        mixed = np.empty(w, dtype=np.uint64)
+        for t in range(w):
+            mixed[t] = _mix64(np.uint64(indices[a + t]))
+        for j in range(bands):
+            key = np.uint64(0)
+            for t in range(rows):
+                salt = salts[j * rows + t]
+                low = top
+                for s in range(w):
+                    h = _mix64(salt ^ mixed[s])
+                    if h < low:
+                        low = h
+                key = _mix64(key ^ low)
+            keys[j, i] = key
+    return keys
+
+
+@kernel
+def run_pair_counts(sorted_keys):
+    """For each position of a sorted key array, how many later positions share its key."""
+    n = sorted_keys.shape[0]
+    counts = np.zeros(n, dtype=np.int64)
+    p = 0
+    while p < n:
+        q = p + 1
+        while q < n and sorted_keys[q] == sorted_keys[p]:
+            q += 1
+        for t in range(p, q):
+            counts[t] = q - t - 1
+        p = q
+    return counts
+
+
+@parallel_kernel
+def verify_positions(order, positions, offsets, counts, words, out):
+    """Overlap of every candidate pair of the given sorted positions, into ``out``.
+
+    Position ``p`` pairs ``order[p]`` with ``order[p + 1 .. p + counts[p]]``;
+    its overlaps go to ``out[offsets[k] ..]`` where ``positions[k] == p``.
+    """
+    n_words = words.shape[1]
+    for k in prange(positions.shape[0]):
+        p = positions[k]
+        a = words[order[p]]
+        base = offsets[k]
+        for t in range(counts[p]):
+            b = words[order[p + 1 + t]]
+            total = 0
+            for w in range(n_words):
+                total += popcount64(a[w] & b[w])
+            out[base + t] = total
+    return out
+
+
+@kernel
+def gather_matches(order, positions, offsets, counts, overlaps, min_overlap):
+    """The verified pairs (low row, high row, overlap) with overlap >= min_overlap."""
+    found = 0
+    for t in range(overlaps.shape[0]):
+        if overlaps[t] >= min_overlap:
+            found += 1
+    lo = np.empty(found, dtype=np.int64)
+    hi = np.empty(found, dtype=np.int64)
+    ov = np.empty(found, dtype=np.int64)
+    f = 0
+    for k in range(positions.shape[0]):
+        p = positions[k]
+        a = order[p]
+        base = offsets[k]
+        for t in range(counts[p]):
+            z = overlaps[base + t]
+            if z >= min_overlap:
+                b = order[p + 1 + t]
+                lo[f] = min(a, b)
+                hi[f] = max(a, b)
+                ov[f] = z
+                f += 1
+    return lo, hi, ov
+
+
+# ---------------------------------------------------------------------------
+# wrappers
+# ---------------------------------------------------------------------------
+
+
+def band_keys(words, weights, *, bands, rows, seed, progress=None) -> np.ndarray:
+    """Band keys of packed codes, shape (bands, codes), uint64 (kernel ``band_keys_kernel``).
+
+    A code's keys depend only on its set bits, ``seed``, ``bands`` and
+    ``rows``, never on its position in the batch. Signatures are computed
+    in chunks of ``SIGNATURE_CHUNK`` codes, in parallel over codes; each
+    chunk is one ``progress(done, total)`` step. O(set bits · bands · rows).
+
+    Examples
+    --------
+    >>> w = np.array([[0b1011], [0b1011], [0b0100]], dtype=np.uint64)
+    >>> k = band_keys(w, np.array([3, 3, 1]), bands=2, rows=2, seed=1)
+    >>> k.shape, bool((k[:, 0] == k[:, 1]).all()), bool((k[:, 0] != k[:, 2]).any())
+    ((2, 3), True, True)
+    """
+    n = words.shape[0]
+    salts = hash_salts(seed, bands * rows)
+    keys = np.empty((bands, n), dtype=np.uint64)
+    for c0 in range(0, n, SIGNATURE_CHUNK):
+        c1 = min(n, c0 + SIGNATURE_CHUNK)
+        indptr, indices = _kernels.unpack_indices(words[c0:c1], weights[c0:c1].astype(np.int64))
+        with PARALLEL_LOCK:
+            keys[:, c0:c1] = band_keys_kernel(indptr, indices, salts, bands, rows)
+        if progress is not None:
+            progress(c1, n)
+    return keys
+
+
+def _band_matches(keys_j, words, min_overlap):
+    """Verified pairs among codes sharing a key in one band; also the candidates checked."""
+    order = np.argsort(keys_j, kind="stable")
+    counts = run_pair_counts(keys_j[order])
+    positions = np.flatnonzero(counts)
+    per = counts[positions]
+    found = []
+    checked = 0
+    start = 0
+    while start < positions.shape[0]:
+        # a chunk of positions whose candidates fit VERIFY_CHUNK (at least one position)
+        cum = np.cumsum(per[start:])
+        stop = start + max(1, int(np.searchsorted(cum, VERIFY_CHUNK, side="right")))
+        pos = positions[start:stop]
+        offsets = np.zeros(pos.shape[0], dtype=np.int64)
+        np.cumsum(per[start : stop - 1], out=offsets[1:])
+        total = int(per[start:stop].sum())
+        out = np.empty(total, dtype=np.int64)
+        with PARALLEL_LOCK:
+            verify_positions(order, pos, offsets, counts, words, out)
+        found.append(gather_matches(order, pos, offsets, counts, out, min_overlap))
+        checked += total
+        start = stop
+    return found, checked
+
+
+def candidate_pairs(words, weights, *, min_overlap, bands, rows, seed, progress=None):
+    """Every pair of rows that shares a band key and overlaps by >= ``min_overlap``.
+
+    Returns ``(lo, hi, overlap, candidates)``: distinct pairs ``lo < hi``
+    (sorted by ``lo``, then ``hi``) with their exact overlaps, and the
+    number of candidate pairs verified (a pair colliding in several bands
+    is counted in each). A true pair of Jaccard similarity J is returned
+    with probability :func:`s_curve` ``(J, bands, rows)``; nothing else is
+    ever returned. ``progress(stage, done, total)`` is told of signature
+    chunks (stage ``"signatures"``) and bands (``"bands"``).
+
+    Cost: O(set bits · bands · rows) hashing, ``bands`` sorts of the codes,
+    one AND + popcount per candidate.
+
+    Examples
+    --------
+    >>> w = np.array([[0b1111], [0b0111], [0b10000]], dtype=np.uint64)
+    >>> lo, hi, ov, _ = candidate_pairs(w, np.array([4, 3, 1]), min_overlap=3, bands=8, rows=1, seed=0)
+    >>> lo.tolist(), hi.tolist(), ov.tolist()
+    ([0], [1], [3])
+    """
+    n = words.shape[0]
+    step = None if progress is None else (lambda done, total: progress("signatures", done, total))
+    keys = band_keys(words, weights, bands=bands, rows=rows, seed=seed, progress=step)
+    pieces = []
+    checked = 0
+    for j in range(bands):
+        found, c = _band_matches(keys[j], words, min_overlap)
+        pieces.extend(found)
+        checked += c
+        if progress is not None:
+            progress("bands", j + 1, bands)
+    del keys
+    if not pieces:
+        empty = np.zeros(0, dtype=np.int64)
+        return empty, empty.copy(), empty.copy(), checked
+    lo = np.concatenate([p[0] for p in pieces])
+    hi = np.concatenate([p[1] for p in pieces])
+    ov = np.concatenate([p[2] for p in pieces])
+    flat, first = np.unique(lo * np.int64(n) + hi, return_index=True)
+    return flat // n, flat % n, ov[first], checked
+
+
+@kernel
+def bit_usage(words, bits):
+    """How many rows set each bit."""
+    counts = np.zeros(bits, dtype=np.int64)
+    for r in range(words.shape[0]):
+        for w in range(words.shape[1]):
+            x = words[r, w]
+            while x != np.uint64(0):
+                low = x & (~x + np.uint64(1))
+                counts[w * 64 + np.int64(popcount64(low - np.uint64(1)))] += 1
+                x = x ^ low
+    return counts
+
+
+def index_seconds(words, bits, *, threads=None) -> float:
+    """Work model of the exact index over these rows, in seconds.
+
+    Adding the rows chunk by chunk and querying each chunk against the rows
+    stored so far updates, for every bit, one counter per pair of rows that
+    both set it: ``sum_b usage_b**2 / 2`` counter updates in all, plus the
+    postings built.
+    """
+    threads = threads or thread_count()
+    usage = bit_usage(words, bits).astype(np.float64)
+    updates = float((usage * usage).sum()) / 2.0
+    return COST["posting"] * updates / threads + COST["add"] * float(usage.sum())

@@ -1,0 +1,633 @@
+"""Near-duplicate detection over a batch of codes: :func:`dedupe`.
+
+Two codes *match* when their full overlap (shared set bits) is at least
+``min_overlap``. :func:`dedupe` labels every code with the index of its
+group's representative:
+
+* ``mode="first"`` — codes in order; a code joins the earlier
+  *representative* (a code not itself merged) of greatest overlap
+  ``>= min_overlap``, ties to the smaller index; with none it becomes a
+  representative. Representatives never match each other, so deduping them
+  again merges nothing. This is the rule an insert-only-what-is-new store
+  follows.
+* ``mode="components"`` — connected components of the match relation
+  (union–find, Tarjan 1975); the label is the component's smallest index.
+
+Matching pairs are found by one of two methods, both verifying every pair
+exactly on the packed codes (AND + popcount), so no reported match is ever
+wrong:
+
+* ``"index"`` — exact: every distinct code is stored in a
+  :class:`~sparseindex.Store` whose single detector holds all of the
+  code's set bits with ``threshold=min_overlap``, so it fires exactly when
+  the overlap reaches the threshold; codes are added chunk by chunk and each
+  chunk queries the codes stored so far. Finds every pair (recall 1);
+  costs about ``sum over bits of usage**2 / 2`` counter updates, quadratic
+  in the number of codes.
+* ``"banding"`` — banded min-wise hashing (Broder 1997; Leskovec, Rajaraman
+  & Ullman, *Mining of Massive Datasets*, ch. 3): codes sharing all min-hashes
+  of some band become candidates. A matching pair has Jaccard similarity at
+  least ``m / (|A| + |B| - m)``; the bands are chosen so that the hardest
+  pair the data can hold (the two heaviest codes at overlap exactly ``m``)
+  is a candidate with chance at least ``recall``. Near-linear work.
+* ``"auto"`` — the exact index when its predicted time is at most
+  :data:`EXACT_BUDGET_SECONDS` or at most banding's; banding otherwise. The
+  summary says which was picked and why.
+
+Codes lighter than ``min_overlap`` can match nothing and stay alone;
+exact copies are grouped first, so a code repeated many times costs nothing
+quadratic.
+"""
+
+from __future__ import annotations
+
+import math
+import time
+from dataclasses import asdict, dataclass, field
+from numbers import Integral, Real
+
+import numpy as np
+
+from . import _banding, _unionfind
+from ._config import thread_count
+from .codes import Codes, as_codes
+from .store import Store
+
+__all__ = ["dedupe", "DedupeSummary", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
+
+#: ``method="auto"`` keeps the exact index whenever it is predicted to take
+#: at most this long, even if banding would be faster.
+EXACT_BUDGET_SECONDS = 1.0
+
+_MODES = ("first", "components")
+_METHODS = ("auto", "banding", "index")
+
+
+@dataclass(frozen=True)
+class DedupeSummary:
+    """What :func:`dedupe` did, for reports (``str(summary)`` is a text report).
+
+    Attributes
+    ----------
+    codes, bits, min_overlap, mode
+        The request.
+    method : str
+        ``"banding"`` or ``"index"``, the method that ran.
+    reason : str
+        Why it ran (the automatic choice's rule and predicted times).
+    groups : int
+        Distinct labels.
+    duplicates : int
+        Codes merged into another code's group (``codes - groups``).
+    largest_group : int
+        Codes in the largest group.
+    exact_copies : int
+        Codes identical to an earlier code (and heavy enough to match it).
+    light_codes : int
+        Codes with fewer than ``min_overlap`` set bits: they match nothing.
+    distinct_codes : int
+        Distinct codes searched for matches.
+    matched_pairs : int
+        Distinct pairs of distinct codes verified to match.
+    candidates_verified : int
+        Pairs whose exact overlap was computed (banding: band collisions,
+        a pair counted once per band it collides in; index: hits).
+    predicted_recall : float
+        Chance that the hardest possible matching pair is found: the
+        S-curve at ``worst_jaccard`` for banding, 1 for the index.
+    worst_jaccard : float or None
+        Jaccard floor of the hardest pair (two heaviest codes at overlap
+        ``min_overlap``); None when fewer than two codes can match.
+    bands, rows : int or None
+        Banding's bands and rows per band (None for the index).
+    seed : int or None
+        Seed of the min-hash functions (None for the index).
+    predicted_seconds : dict
+        The work model's time of each method considered.
+    seconds : dict
+        Measured time of each stage and ``"total"``.
+    """
+
+    codes: int
+    bits: int
+    min_overlap: int
+    mode: str
+    method: str
+    reason: str
+    groups: int
+    duplicates: int
+    largest_group: int
+    exact_copies: int
+    light_codes: int
+    distinct_codes: int
+    matched_pairs: int
+    candidates_verified: int
+    predicted_recall: float
+    worst_jaccard: float | None
+    bands: int | None
+    rows: int | None
+    seed: int | None
+    predicted_seconds: dict = field(default_factory=dict)
+    seconds: dict = field(default_factory=dict)
+
+    def to_dict(self) -> dict:
+        """Plain-Python dict (JSON-serialisable)."""
+        return asdict(self)
+
+    def __str__(self) -> str:
+        lines = [
+            f"{self.codes:,} codes of {self.bits:,} bits, min overlap {self.min_overlap}, mode {self.mode}",
+            f"  method: {self.method} ({self.reason})",
+        ]
+        if self.method == "banding":
+            lines.append(
+                f"  bands: {self.bands} of {self.rows} rows, seed {self.seed}; predicted candidate recall "
+                f"{_fmt_recall(self.predicted_recall)} for the hardest pair (Jaccard {self.worst_jaccard:.4f})"
+            )
+        else:
+            lines.append("  exact: every matching pair found (recall 1)")
+        lines += [
+            f"  groups: {self.groups:,}; duplicates: {self.duplicates:,}; largest group: {self.largest_group:,}",
+            f"  exact copies: {self.exact_copies:,}; codes too light to match (< {self.min_overlap} set bits): "
+            f"{self.light_codes:,}",
+            f"  pairs: {self.candidates_verified:,} candidates verified, {self.matched_pairs:,} matched "
+            f"(among {self.distinct_codes:,} distinct codes)",
+            "  time: "
+            + f"{self.seconds.get('total', 0.0):.3g} s ("
+            + ", ".join(f"{k} {v:.3g} s" for k, v in self.seconds.items() if k != "total")
+            + ")",
+        ]
+        return "\n".join(lines)
+
+
+def _fmt_recall(p: float) -> str:
+    miss = 1.0 - p
+    if miss <= 0:
+        return "1"
+    if miss < 1e-4:
+        return f"1 - {miss:.1e}"
+    return f"{p:.4f}"
+
+
+# ---------------------------------------------------------------------------
+# validation
+# ---------------------------------------------------------------------------
+
+
+def _as_batch(codes, bits) -> Codes:
+    """Any accepted batch form as Codes; the width is inferred where the form carries it."""
+    import scipy.sparse as sp
+
+    if bits is not None:
+        if isinstance(bits, (bool, np.bool_)) or not isinstance(bits, Integral) or bits < 1:
+            raise ValueError(f"dedupe: bits={bits!r} must be a positive integer")
+        bits = int(bits)
+    if bits is None:
+        if isinstance(codes, Codes):
+            bits = codes.bits
+        elif isinstance(codes, np.ndarray) and codes.dtype == np.bool_ and codes.ndim == 2:
+            bits = codes.shape[1]
+        elif sp.issparse(codes) and codes.ndim == 2:
+            bits = codes.shape[1]
+        elif isinstance(codes, (list, tuple)) and codes and hasattr(codes[0], "endian"):
+            bits = len(codes[0])  # a list of bitarray
+        else:
+            raise TypeError(
+                f"dedupe: cannot tell the code width of a {type(codes).__name__}; pass bits=... "
+                "(index lists need it) or a Codes batch"
+            )
+    return as_codes(codes, bits, what="dedupe")
+
+
+def _check_min_overlap(min_overlap, bits) -> int:
+    if isinstance(min_overlap, (bool, np.bool_)) or not isinstance(min_overlap, Integral):
+        raise TypeError(f"dedupe: min_overlap={min_overlap!r} must be an integer")
+    if min_overlap < 1:
+        raise ValueError(f"dedupe: min_overlap={min_overlap} must be >= 1 (0 would merge every code)")
+    if min_overlap > bits:
+        raise ValueError(f"dedupe: min_overlap={min_overlap} exceeds bits={bits}: no two codes could ever match")
+    return int(min_overlap)
+
+
+def _check_choice(name, value, allowed):
+    if not isinstance(value, str) or value not in allowed:
+        raise ValueError(f"dedupe: {name}={value!r} must be one of {', '.join(repr(a) for a in allowed)}")
+    return value
+
+
+def _check_recall(recall) -> float:
+    if isinstance(recall, (bool, np.bool_)) or not isinstance(recall, Real) or not math.isfinite(recall):
+        raise ValueError(f"dedupe: recall={recall!r} must be a number in (0, 1]")
+    if not 0.0 < recall <= 1.0:
+        raise ValueError(f"dedupe: recall={recall!r} must be in (0, 1]")
+    return float(recall)
+
+
+def _check_bands(bands):
+    if bands is None:
+        return None
+    try:
+        b, r = bands
+    except (TypeError, ValueError):
+        raise ValueError(f"dedupe: bands={bands!r} must be a pair (bands, rows) of positive integers") from None
+    for name, v in (("bands", b), ("rows", r)):
+        if isinstance(v, (bool, np.bool_)) or not isinstance(v, Integral) or v < 1:
+            raise ValueError(f"dedupe: bands={bands!r}: {name}={v!r} must be a positive integer")
+    return int(b), int(r)
+
+
+def _check_seed(seed) -> int:
+    if seed is None:
+        return int(np.random.SeedSequence().generate_state(1, dtype=np.uint64)[0])
+    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, Integral):
+        raise TypeError(f"dedupe: seed={seed!r} must be an integer or None")
+    if not 0 <= seed < 2**64:
+        raise ValueError(f"dedupe: seed={seed} must be in 0..2**64-1")
+    return int(seed)
+
+
+def _progress_callback(progress):
+    if progress is None or progress is False:
+        return None, None
+    if progress is True:
+        bar = TqdmProgress()
+        return bar, bar.close
+    if callable(progress):
+        return progress, None
+    raise TypeError(f"dedupe: progress={progress!r} must be True, False or a callable (stage, done, total)")
+
+
+class TqdmProgress:
+    """A ``progress(stage, done, total)`` callback drawing one tqdm bar per stage on stderr.
+
+    ``delay`` seconds pass before a bar is shown, so short runs print
+    nothing. Call :meth:`close` at the end.
+    """
+
+    def __init__(self, delay: float = 0.5, file=None):
+        self._delay = delay
+        self._file = file
+        self._bar = None
+        self._stage = None
+
+    def __call__(self, stage, done, total):
+        if stage != self._stage:
+            self.close()
+            from tqdm import tqdm
+
+            self._bar = tqdm(total=total, desc=stage, delay=self._delay, file=self._file, leave=False,
+                             unit="", dynamic_ncols=True)
+            self._stage = stage
+        self._bar.update(done - self._bar.n)
+
+    def close(self):
+        if self._bar is not None:
+            self._bar.close()
+        self._bar = None
+        self._stage = None
+
+
+# ---------------------------------------------------------------------------
+# the pieces
+# ---------------------------------------------------------------------------
+
+
+def _distinct(words, weights, min_overlap):
+    """Distinct heavy-enough codes: (uid per code or -1, first index per unique, copies)."""
+    n = words.shape[0]
+    uid = np.full(n, -1, dtype=np.int64)
+    heavy = np.flatnonzero(weights >= min_overlap)
+    if heavy.size == 0:
+        return uid, np.zeros(0, dtype=np.int64), 0
+    sub = np.ascontiguousarray(words[heavy])
+    hashes = _unionfind.row_hashes(sub)
+    order = np.argsort(hashes, kind="stable")
+    owner = _unionfind.exact_copy_owners(order, _banding.run_pair_counts(hashes[order]), sub)
+    heads = np.flatnonzero(owner == np.arange(heavy.size))
+    uid[heavy] = np.searchsorted(heads, owner)
+    return uid, heavy[heads], int(heavy.size - heads.size)
+
+
+def _index_pairs(codes_u: Codes, min_overlap, progress):
+    """Every matching pair of distinct codes through the exact detector index."""
+    n = len(codes_u)
+    store = Store(codes_u.bits, threshold=min_overlap, segment=None, detectors=1, seed=0)
+    chunk = int(min(1 << 15, max(1 << 10, n // 64 + 1)))
+    lo_parts, hi_parts, ov_parts = [], [], []
+    hits_total = 0
+    for c0 in range(0, n, chunk):
+        c1 = min(n, c0 + chunk)
+        part = codes_u[c0:c1]
+        store.add(part)
+        hits = store.query_many(part, min_overlap=min_overlap)
+        hits_total += hits.ids.shape[0]
+        query = np.repeat(np.arange(c0, c1, dtype=np.int64), hits.counts)
+        keep = hits.ids < query
+        lo_parts.append(hits.ids[keep])
+        hi_parts.append(query[keep])
+        ov_parts.append(hits.overlaps[keep])
+        if progress is not None:
+            progress("index", c1, n)
+    lo = np.concatenate(lo_parts) if lo_parts else np.zeros(0, dtype=np.int64)
+    hi = np.concatenate(hi_parts) if hi_parts else np.zeros(0, dtype=np.int64)
+    ov = np.concatenate(ov_parts) if ov_parts else np.zeros(0, dtype=np.int64)
+    order = np.lexsort((hi, lo))
+    return lo[order], hi[order], ov[order], hits_total
+
+
+def _choose(method, recall, bands, words_u, weights_u, bits, min_overlap, seed):
+    """Which method runs, why, its band choice, the predicted seconds, the worst Jaccard."""
+    u = words_u.shape[0]
+    threads = thread_count()
+    predicted = {}
+    heaviest = np.sort(weights_u)[-2:] if u >= 2 else None
+    worst = _banding.jaccard_floor(min_overlap, int(heaviest[0]), int(heaviest[1])) if u >= 2 else None
+    if method == "index" or (method == "auto" and bands is None and (u < 2 or recall >= 1.0)):
+        if u >= 2:
+            predicted["index"] = _banding.index_seconds(words_u, bits, threads=threads)
+        why = "requested" if method == "index" else (
+            "fewer than two distinct codes can match" if u < 2 else "recall=1 needs the exact index")
+        return "index", why, None, predicted, worst
+    if bands is not None and (method == "banding" or method == "auto"):
+        b, r = bands
+        choice = None
+        if u >= 2:
+            moments = _banding.similarity_moments(words_u, weights_u, max_rows=r, seed=seed)
+            cand, secs = _banding.banding_seconds(
+                b, r, codes=u, set_bits=float(weights_u.sum()), moment=moments[r - 1], threads=threads
+            )
+            choice = _banding.BandChoice(b, r, worst, _banding.s_curve(worst, b, r), cand, secs)
+            predicted["banding"] = secs
+        else:
+            choice = _banding.BandChoice(b, r, 0.0, 1.0, 0.0, 0.0)
+        return "banding", f"bands={b}x{r} requested", choice, predicted, worst
+    if u < 2:  # banding requested, nothing to pair
+        return "banding", "requested", _banding.BandChoice(1, 1, 0.0, 1.0, 0.0, 0.0), predicted, worst
+    if recall >= 1.0:
+        raise ValueError("dedupe: recall=1 cannot be promised by banding; use method='index' or recall < 1")
+    moments = _banding.similarity_moments(words_u, weights_u, seed=seed)
+    choice = _banding.choose_bands(worst, recall, codes=u, set_bits=float(weights_u.sum()), moments=moments,
+                                   threads=threads)
+    if choice is not None:
+        predicted["banding"] = choice.seconds
+    if method == "banding":
+        if choice is None:
+            raise ValueError(
+                f"dedupe: no banding within {_banding.MAX_HASHES} min-hashes per code reaches recall={recall} "
+                f"at the hardest pair's Jaccard {worst:.4g} (min_overlap={min_overlap}, heaviest codes "
+                f"{int(heaviest[1])} and {int(heaviest[0])} set bits); use method='index' or a lower recall"
+            )
+        return "banding", "requested", choice, predicted, worst
+    idx = _banding.index_seconds(words_u, bits, threads=threads)
+    predicted["index"] = idx
+    if choice is None:
+        return "index", (
+            f"auto: no banding within {_banding.MAX_HASHES} min-hashes per code reaches recall {recall} at the "
+            f"hardest pair's Jaccard {worst:.3g}"), None, predicted, worst
+    if idx <= EXACT_BUDGET_SECONDS or idx <= choice.seconds:
+        rule = f"within the {EXACT_BUDGET_SECONDS:g} s exact budget" if idx <= EXACT_BUDGET_SECONDS else \
+            "no slower than banding"
+        return "index", (
+            f"auto: exact index predicted {idx:.3g} s, {rule}; banding predicted {choice.seconds:.3g} s"
+        ), None, predicted, worst
+    return "banding", (
+        f"auto: banding predicted {choice.seconds:.3g} s against {idx:.3g} s for the exact index"
+    ), choice, predicted, worst
+
+
+def _labels(mode, uid, first, weights_u, lo, hi, ov):
+    n = uid.shape[0]
+    u = first.shape[0]
+    if mode == "components":
+        roots = _unionfind.component_roots(u, lo, hi)
+        labels = np.arange(n, dtype=np.int64)
+        heavy = uid >= 0
+        labels[heavy] = first[roots[uid[heavy]]]
+        return labels
+    src = np.concatenate([lo, hi])
+    dst = np.concatenate([hi, lo])
+    both = np.concatenate([ov, ov])
+    order = np.argsort(src, kind="stable")
+    indptr = np.zeros(u + 1, dtype=np.int64)
+    np.cumsum(np.bincount(src, minlength=u), out=indptr[1:])
+    return _unionfind.greedy_first(uid, first, weights_u.astype(np.int64), indptr, dst[order], both[order])
+
+
+# ---------------------------------------------------------------------------
+# public entry point
+# ---------------------------------------------------------------------------
+
+
+def dedupe(
+    codes,
+    *,
+    min_overlap,
+    mode="first",
+    method="auto",
+    recall=0.99,
+    bands=None,
+    seed=None,
+    bits=None,
+    progress=False,
+    return_summary=False,
+):
+    """Label near-duplicate codes: each label is the index of its group's representative.
+
+    Parameters
+    ----------
+    codes
+        A :class:`~sparseindex.Codes` batch, a 2-D bool array, a
+        scipy.sparse matrix, a list of ``bitarray`` or a list of index
+        sequences (then ``bits`` is required).
+    min_overlap : int
+        Two codes match when they share at least this many set bits (>= 1).
+    mode : {"first", "components"}
+        ``"first"``: each code joins the earlier representative of greatest
+        overlap (ties to the smaller index) or becomes one.
+        ``"components"``: connected components of the match relation,
+        labelled by their smallest index.
+    method : {"auto", "banding", "index"}
+        How matching pairs are found (see the module docs); ``"auto"``
+        picks the exact index when it is predicted to take at most
+        :data:`EXACT_BUDGET_SECONDS` or no longer than banding.
+    recall : float
+        Banding: the least chance that the hardest possible matching pair
+        becomes a candidate; the bands are chosen for it (default 0.99).
+        ``recall=1`` means the exact index.
+    bands : (int, int) or None
+        Banding: force ``bands`` bands of ``rows`` rows instead of choosing.
+    seed : int or None
+        Seeds the min-hash functions (None: a fresh seed, kept in the
+        summary). The index method uses no randomness.
+    bits : int or None
+        Code width, needed only for index lists.
+    progress : bool or callable
+        True draws tqdm bars on stderr; a callable is called as
+        ``progress(stage, done, total)``.
+    return_summary : bool
+        Also return a :class:`DedupeSummary`.
+
+    Returns
+    -------
+    labels : ndarray of int64
+        ``labels[i]`` is the representative's index; ``labels[i] == i``
+        for representatives (and for codes lighter than ``min_overlap``).
+    summary : DedupeSummary
+        Only with ``return_summary=True``.
+
+    Notes
+    -----
+    Every merge rests on a pair verified exactly (AND + popcount), so a
+    code is never merged with one it does not match (precision 1). With
+    banding a matching pair can be missed with chance at most ``1 -
+    recall`` (the summary's ``predicted_recall``); a missed pair splits a
+    group or, in mode ``"first"``, may give a code another representative.
+
+    Cost: banding O(set bits · bands · rows + codes · bands · log codes +
+    candidates); index about ``sum over bits of usage**2 / 2`` counter
+    updates. Memory: the codes plus ``8 · bands`` bytes per code (banding)
+    or the postings of a store (index).
+
+    Examples
+    --------
+    >>> import sparseindex
+    >>> rows = [[1, 2, 3, 4], [1, 2, 3, 5], [7, 8, 9, 10], [1, 2, 3, 4]]
+    >>> sparseindex.dedupe(rows, min_overlap=3, bits=16).tolist()
+    [0, 0, 2, 0]
+    >>> labels, summary = sparseindex.dedupe(rows, min_overlap=3, bits=16, mode="components",
+    ...                                      return_summary=True)
+    >>> summary.groups, summary.duplicates, summary.largest_group, summary.method
+    (2, 2, 3, 'index')
+    """
+    t_start = time.perf_counter()
+    batch = _as_batch(codes, bits)
+    min_overlap = _check_min_overlap(min_overlap, batch.bits)
+    mode = _check_choice("mode", mode, _MODES)
+    method = _check_choice("method", method, _METHODS)
+    recall = _check_recall(recall)
+    bands = _check_bands(bands)
+    if bands is not None and method == "index":
+        raise ValueError(f"dedupe: bands={bands!r} goes with method='banding', not method='index'")
+    if not isinstance(return_summary, (bool, np.bool_)):
+        raise TypeError(f"dedupe: return_summary={return_summary!r} must be True or False")
+    seed = _check_seed(seed)
+    callback, finish = _progress_callback(progress)
+    try:
+        seconds = {}
+        t0 = time.perf_counter()
+        words, weights = batch._words, batch._weights
+        uid, first, copies = _distinct(words, weights, min_overlap)
+        words_u = np.ascontiguousarray(words[first])
+        weights_u = weights[first]
+        seconds["copies"] = time.perf_counter() - t0
+
+        t0 = time.perf_counter()
+        picked, reason, choice, predicted, worst = _choose(
+            method, recall, bands, words_u, weights_u, batch.bits, min_overlap, seed)
+        seconds["choice"] = time.perf_counter() - t0
+
+        t0 = time.perf_counter()
+        if picked == "index":
+            lo, hi, ov, checked = _index_pairs(Codes._wrap(words_u, batch.bits), min_overlap, callback)
+        else:
+            lo, hi, ov, checked = _banding.candidate_pairs(
+                words_u, weights_u, min_overlap=min_overlap, bands=choice.bands, rows=choice.rows, seed=seed,
+                progress=callback)
+        seconds["pairs"] = time.perf_counter() - t0
+
+        t0 = time.perf_counter()
+        labels = _labels(mode, uid, first, weights_u, lo, hi, ov)
+        seconds["grouping"] = time.perf_counter() - t0
+    finally:
+        if finish is not None:
+            finish()
+    if not return_summary:
+        return labels
+    n = labels.shape[0]
+    sizes = np.bincount(labels, minlength=n) if n else np.zeros(0, dtype=np.int64)
+    groups = int(np.count_nonzero(sizes))
+    seconds["total"] = time.perf_counter() - t_start
+    summary = DedupeSummary(
+        codes=n,
+        bits=batch.bits,
+        min_overlap=min_overlap,
+        mode=mode,
+        method=picked,
+        reason=reason,
+        groups=groups,
+        duplicates=n - groups,
+        largest_group=int(sizes.max()) if n else 0,
+        exact_copies=copies,
+        light_codes=int(np.count_nonzero(uid < 0)),
+        distinct_codes=int(first.shape[0]),
+        matched_pairs=int(lo.shape[0]),
+        candidates_verified=int(checked),
+        predicted_recall=1.0 if picked == "index" else float(choice.recall),
+        worst_jaccard=None if worst is None else float(worst),
+        bands=None if choice is None else int(choice.bands),
+        rows=None if choice is None else int(choice.rows),
+        seed=None if picked == "index" else seed,
+        predicted_seconds={k: float(v) for k, v in predicted.items()},
+        seconds={k: float(v) for k, v in seconds.items()},
+    )
+    return labels, summary
+
+
+# ---------------------------------------------------------------------------
+# invented test data
+# ---------------------------------------------------------------------------
+
+
+def planted_duplicates(count, bits, active, *, fraction=0.1, max_changed=8, chain=0.0, seed=0):
+    """Random codes with planted near-duplicates, in shuffled order (for tests, demos, benchmarks).
+
+    ``round(fraction * count)`` of the ``count`` codes are near-duplicates:
+    each copies a *source* and swaps ``k`` of its ``active`` bits for ``k``
+    bits outside it, ``k`` uniform in ``0..max_changed``, so it overlaps its
+    source by ``active - k``. Sources are the random codes; with chance
+    ``chain`` a source is an earlier near-duplicate instead, making chains
+    whose ends may overlap by less than any link. The rest are uniform
+    random codes of ``active`` bits (``Codes.random``).
+
+    Returns ``(codes, source, changed)``: ``source[i]`` is the index of the
+    code that code ``i`` was copied from (-1 for a random code) and
+    ``changed[i]`` its ``k``.
+
+    Examples
+    --------
+    >>> codes, source, changed = planted_duplicates(1000, 256, 20, fraction=0.1, max_changed=3, seed=1)
+    >>> len(codes), int((source >= 0).sum()), bool(codes.weights.min() == codes.weights.max() == 20)
+    (1000, 100, True)
+    """
+    rng = np.random.default_rng(seed)
+    n_dup = int(round(fraction * count))
+    n_orig = count - n_dup
+    base = Codes.random(n_orig, bits, active, seed=int(rng.integers(2**63)))
+    rows = np.zeros((count, active), dtype=np.int64)
+    if n_orig:
+        rows[:n_orig] = np.stack(base.to_indices()) if active else 0
+    src = np.full(count, -1, dtype=np.int64)
+    changed = np.zeros(count, dtype=np.int64)
+    ks = rng.integers(0, max_changed + 1, size=n_dup)
+    for t in range(n_dup):
+        i = n_orig + t
+        if t and rng.random() < chain:
+            s = int(rng.integers(n_orig, i))
+        else:
+            s = int(rng.integers(0, n_orig))
+        k = int(min(ks[t], active, bits - active))
+        keep = rng.permutation(rows[s])[: active - k]
+        fresh = []
+        while len(fresh) < k:
+            pool = np.setdiff1d(rng.integers(0, bits, size=2 * k + 4), rows[s])
+            fresh = list(dict.fromkeys(fresh + rng.permutation(pool).tolist()))[:k]
+        rows[i] = np.sort(np.concatenate([keep, np.array(fresh, dtype=np.int64)]))
+        src[i] = s
+        changed[i] = k
+    perm = rng.permutation(count)
+    inverse = np.empty(count, dtype=np.int64)
+    inverse[perm] = np.arange(count)
+    rows = rows[perm]
+    src = src[perm]
+    src[src >= 0] = inverse[src[src >= 0]]
+    return Codes.from_indices(rows, bits), src, changed[perm]
