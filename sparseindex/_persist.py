@@ -388,14 +388,14 @@ def _parse_layout(header, v, strict, data_start, size, path):
     entries, at = {}, data_start
     order = []
     for i, raw in enumerate(table):
-        e = _Fields(raw, f"sections[{i}]", ("name", "dtype", "shape", "offset", "nbytes", "crc32"), strict, path)
-        name = raw["name"]
-        if not isinstance(name, str):
-            _fail(f"sections[{i}]", f"name={name!r} is not a string", path)
+        name = raw.get("name") if isinstance(raw, dict) else None
+        if not isinstance(name, str) or len(name) > 64:
+            _fail(f"sections[{i}]", f"name={name!r} is not a section name", path)
+        e = _Fields(raw, name, ("name", "dtype", "shape", "offset", "nbytes", "crc32"), strict, path)
         if name in entries:
             _fail(name, "listed twice", path)
-        offset = e.int("offset", 0, size)
-        nbytes = e.int("nbytes", 0, size)
+        offset = e.int("offset", 0, 2**63)
+        nbytes = e.int("nbytes", 0, 2**63)
         crc = e.int("crc32", 0, 2**32 - 1)
         if offset % ALIGN:
             _fail(name, f"offset {offset} is not a multiple of {ALIGN}", path)
