@@ -53,7 +53,7 @@ from ._config import thread_count
 from .codes import Codes, as_codes
 from .store import Store
 
-__all__ = ["dedupe", "DedupeSummary", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
+__all__ = ["dedupe", "DedupeSummary", "TqdmProgress", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
 
 #: ``method="auto"`` keeps the exact index whenever it is predicted to take
 #: at most this long, even if banding would be faster.
