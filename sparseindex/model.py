@@ -12,8 +12,24 @@ hypergeometric tail sums, and this module computes them exactly in log space:
 * :func:`detector_failure` -- a detector after bit positions die at random;
 * :func:`store_false_hit` and :func:`capacity` -- a store of many codes.
 
-All functions accept numpy arrays for any parameter (they broadcast) and then
-return arrays; with scalar arguments they return Python numbers.  Pass
+Real stores use some bits far more than others.  The usage-aware model
+replaces the uniformly random query by a conditional Poisson query
+(independent Bernoulli bits given the query's weight; Hajek 1964, Chen,
+Dempster & Liu 1994) whose inclusion chances follow the measured usage:
+
+* :func:`usage_bernoulli` -- the Bernoulli parameters for measured usage;
+* :func:`inclusion_probabilities` -- each bit's chance to be in the query;
+* :func:`detector_fire_probability` and :func:`code_fire_probability` --
+  exact Poisson-binomial chances for given detector samples;
+* :func:`usage_false_hits` -- expected false hits of a store, estimated from
+  a sample of its codes, with a standard error;
+* :func:`sample_usage_queries` -- exact random queries of that model;
+* :func:`clopper_pearson` and :func:`clopper_pearson_upper` -- exact
+  intervals for the false-hit rate a probe measures.
+
+The hypergeometric functions accept numpy arrays for any parameter (they
+broadcast) and then return arrays; with scalar arguments they return Python
+numbers.  Pass
 ``log=True`` to get the natural logarithm of a chance, which stays finite far
 below the smallest double (1e-308).
 
@@ -1738,7 +1754,10 @@ def usage_false_hits(p, codes, threshold, query_active, items, *,
     exact = (work <= limit) & (nd <= 62)
     pt, qt = _centred(p, q)
     values = np.empty(m)
-    if np.any(exact):
+    if np.all(exact):
+        fires, quiet = _fire_masses(pt, qt, code_ptr, det_ptr, flat, q, theta)
+        values[:] = _ratio(fires, quiet, False)
+    elif np.any(exact):
         sel = np.flatnonzero(exact)
         sub_ptr, sub_det, sub_flat = _sub_codes(code_ptr, det_ptr, flat, sel)
         fires, quiet = _fire_masses(pt, qt, sub_ptr, sub_det, sub_flat, q, theta)

@@ -29,7 +29,6 @@ from sparseindex.model import (
     clopper_pearson,
     clopper_pearson_upper,
     code_fire_probability,
-    detector_false_hit,
     detector_fire_probability,
     false_hit_per_code,
     inclusion_probabilities,
