@@ -109,9 +109,15 @@ def load_codes(path, bits=None) -> Codes:
     ext = os.path.splitext(path)[1].lower()
     try:
         if ext == ".npy":
+            with open(path, "rb") as f:
+                if f.read(6) != b"\x93NUMPY":
+                    raise InputError(f"{path}: not a .npy file (no NumPy header)")
             try:
                 arr = np.load(path, mmap_mode="r", allow_pickle=False)
             except ValueError as exc:
+                if "object" in str(exc).lower():
+                    raise InputError(f"{path}: holds Python objects (dtype object); expected a bool or integer "
+                                     "array (pickles are never loaded)") from None
                 raise InputError(f"{path}: not a readable .npy array ({' '.join(str(exc).split())})") from None
             if not isinstance(arr, np.ndarray):
                 raise InputError(f"{path}: holds {type(arr).__name__}, not one array")
