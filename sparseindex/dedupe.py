@@ -587,7 +587,8 @@ def planted_duplicates(count, bits, active, *, fraction=0.1, max_changed=8, chai
     source by ``active - k``. Sources are the random codes; with chance
     ``chain`` a source is an earlier near-duplicate instead, making chains
     whose ends may overlap by less than any link. The rest are uniform
-    random codes of ``active`` bits (``Codes.random``).
+    random codes of ``active`` bits (``Codes.random``). Vectorised: about a
+    second per million codes.
 
     Returns ``(codes, source, changed)``: ``source[i]`` is the index of the
     code that code ``i`` was copied from (-1 for a random code) and
@@ -602,28 +603,27 @@ def planted_duplicates(count, bits, active, *, fraction=0.1, max_changed=8, chai
     rng = np.random.default_rng(seed)
     n_dup = int(round(fraction * count))
     n_orig = count - n_dup
+    if not 0 <= max_changed <= min(active, bits - active):
+        raise ValueError(f"max_changed={max_changed} must be in 0..min(active, bits - active)")
     base = Codes.random(n_orig, bits, active, seed=int(rng.integers(2**63)))
     rows = np.zeros((count, active), dtype=np.int64)
-    if n_orig:
-        rows[:n_orig] = np.stack(base.to_indices()) if active else 0
+    if n_orig and active:
+        rows[:n_orig] = _kernels_unpack(base).reshape(n_orig, active)
     src = np.full(count, -1, dtype=np.int64)
     changed = np.zeros(count, dtype=np.int64)
-    ks = rng.integers(0, max_changed + 1, size=n_dup)
-    for t in range(n_dup):
-        i = n_orig + t
-        if t and rng.random() < chain:
-            s = int(rng.integers(n_orig, i))
-        else:
-            s = int(rng.integers(0, n_orig))
-        k = int(min(ks[t], active, bits - active))
-        keep = rng.permutation(rows[s])[: active - k]
-        fresh = []
-        while len(fresh) < k:
-            pool = np.setdiff1d(rng.integers(0, bits, size=2 * k + 4), rows[s])
-            fresh = list(dict.fromkeys(fresh + rng.permutation(pool).tolist()))[:k]
-        rows[i] = np.sort(np.concatenate([keep, np.array(fresh, dtype=np.int64)]))
-        src[i] = s
-        changed[i] = k
+    dups = np.arange(n_orig, count)
+    chained = (rng.random(n_dup) < chain) & (dups > n_orig)
+    src[dups] = rng.integers(0, n_orig, size=n_dup) if n_orig else -1
+    src[dups[chained]] = (n_orig + (rng.random(int(chained.sum())) * (dups[chained] - n_orig))).astype(np.int64)
+    changed[dups] = rng.integers(0, max_changed + 1, size=n_dup)
+    # generation g copies codes of generation g - 1 (originals are generation 0)
+    generation = np.zeros(count, dtype=np.int64)
+    generation[dups[~chained]] = 1
+    for i in dups[chained].tolist():  # sources come earlier, so their generation is known
+        generation[i] = generation[src[i]] + 1
+    for g in range(1, int(generation.max(initial=0)) + 1):
+        batch = np.flatnonzero(generation == g)
+        rows[batch] = _near_copies(rows[src[batch]], changed[batch], bits, rng)
     perm = rng.permutation(count)
     inverse = np.empty(count, dtype=np.int64)
     inverse[perm] = np.arange(count)
@@ -631,3 +631,39 @@ def planted_duplicates(count, bits, active, *, fraction=0.1, max_changed=8, chai
     src = src[perm]
     src[src >= 0] = inverse[src[src >= 0]]
     return Codes.from_indices(rows, bits), src, changed[perm]
+
+
+def _kernels_unpack(codes: Codes) -> np.ndarray:
+    from . import _kernels
+
+    return _kernels.unpack_indices(codes._words, codes._weights)[1]
+
+
+def _near_copies(sources, k, bits, rng):
+    """Each row of ``sources`` with ``k[row]`` of its bits swapped for bits outside it."""
+    n, active = sources.shape
+    out = sources.copy()
+    todo = np.flatnonzero(k > 0)
+    while todo.size:
+        s = sources[todo]
+        kk = k[todo]
+        width = int(kk.max()) * 2 + 8
+        fresh = rng.integers(0, bits, size=(todo.size, width))
+        bad = (fresh[:, :, None] == s[:, None, :]).any(axis=2)
+        for c in range(1, width):  # a candidate repeated earlier in its row
+            bad[:, c] |= (fresh[:, :c] == fresh[:, c : c + 1]).any(axis=1)
+        good = ~bad
+        rank = np.cumsum(good, axis=1)
+        take = good & (rank <= kk[:, None])
+        done = take.sum(axis=1) == kk
+        rows_done = todo[done]
+        # which of the source's bits are swapped: the k of lowest random rank
+        order = np.argsort(rng.random((rows_done.size, active)), axis=1)
+        swap = np.zeros((rows_done.size, active), dtype=bool)
+        np.put_along_axis(swap, order, np.arange(active)[None, :] < kk[done][:, None], axis=1)
+        replaced = s[done].copy()
+        replaced[swap] = fresh[done][take[done]]
+        out[rows_done] = replaced
+        todo = todo[~done]
+    out.sort(axis=1)
+    return out
