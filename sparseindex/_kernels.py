@@ -564,51 +564,85 @@ def top_k(overlaps, removed, k, max_overlap):
 # ---------------------------------------------------------------------------
 
 
-@kernel
+#: Detectors per tile in ``check_postings``: their codes (256 B each at
+#: 2048 bits) stay in the second-level cache while every bit's postings of
+#: the tile are checked against them.
+CHECK_TILE = 2048
+
+
+@inline_kernel
+def _check_block(post, block_indptr, lo, size, words, weights, detectors, segment, k, counts, cursor):
+    """``check_postings`` for block ``k``: (problem, where), see there."""
+    bits = block_indptr.shape[1] - 1
+    for b in range(bits):
+        start, end = block_indptr[k, b], block_indptr[k, b + 1]
+        prev = -1
+        for p in range(start, end):  # order and range first: the tiles rely on them
+            off = np.int64(post[p])
+            if off >= size:
+                return 1, p
+            if off <= prev:
+                return 2, p
+            prev = off
+        cursor[b] = start
+    for tile in range(0, size, CHECK_TILE):
+        tile_end = min(size, tile + CHECK_TILE)
+        for b in range(bits):
+            word = b >> 6
+            shift = np.uint64(b & 63)
+            end = block_indptr[k, b + 1]
+            p = cursor[b]
+            while p < end:
+                off = np.int64(post[p])
+                if off >= tile_end:
+                    break
+                row = lo + off if detectors == 1 else (lo + off) // detectors
+                if (words[row, word] >> shift) & np.uint64(1) == 0:
+                    return 3, p
+                counts[off] += 1
+                p += 1
+            cursor[b] = p
+    for d in range(size):
+        w = weights[(lo + d) // detectors]
+        want = w if segment < 0 or segment > w else segment
+        if counts[d] != want:
+            return 4, lo + d
+    return 0, 0
+
+
+@parallel_kernel
 def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detectors, segment):
     """Check postings read from a file against the codes they index.
 
     The caller has already checked the *shape* of the tables (``block_indptr``
     monotone and inside ``post``; blocks consecutive, each at most one span,
     together covering ``rows * detectors`` detectors). This kernel reads only
-    and checks, per block: every offset lies inside its block, the postings
-    of each bit strictly ascend, the bit is set in the code that owns the
-    detector, and every detector holds exactly ``min(segment, weight)``
-    postings (``segment < 0``: all of its code's bits).
+    and checks, per block (blocks in parallel): every offset lies inside its
+    block, the postings of each bit strictly ascend, the bit is set in the
+    code that owns the detector, and every detector holds exactly
+    ``min(segment, weight)`` postings (``segment < 0``: all of its code's
+    bits). It walks each block in tiles of ``CHECK_TILE`` detectors with one
+    cursor per bit, so the codes it tests stay in cache.
 
-    Returns ``(problem, where)``: ``problem`` 0 when all holds, else 1
-    (offset outside its block; ``where`` = position in ``post``), 2 (not
-    ascending; position), 3 (bit not set in the owner's code; position) or
-    4 (wrong number of postings; ``where`` = detector id).
+    Returns ``(problem, where)`` for the first bad block: ``problem`` 0 when
+    all holds, else 1 (offset outside its block; ``where`` = position in
+    ``post``), 2 (not ascending; position), 3 (bit not set in the owner's
+    code; position) or 4 (wrong number of postings; ``where`` = detector id).
     """
     n_blocks = block_indptr.shape[0]
     bits = block_indptr.shape[1] - 1
-    widest = 0
-    for k in range(n_blocks):
-        widest = max(widest, block_hi[k] - block_lo[k])
-    counts = np.zeros(widest, dtype=np.int64)
-    for k in range(n_blocks):
+    problems = np.zeros(n_blocks, dtype=np.int64)
+    wheres = np.zeros(n_blocks, dtype=np.int64)
+    for k in prange(n_blocks):
         lo = block_lo[k]
         size = block_hi[k] - lo
-        for b in range(bits):
-            word = b >> 6
-            shift = np.uint64(b & 63)
-            prev = -1
-            for p in range(block_indptr[k, b], block_indptr[k, b + 1]):
-                off = np.int64(post[p])
-                if off >= size:
-                    return 1, p
-                if off <= prev:
-                    return 2, p
-                prev = off
-                row = (lo + off) // detectors
-                if (words[row, word] >> shift) & np.uint64(1) == 0:
-                    return 3, p
-                counts[off] += 1
-        for d in range(size):
-            w = weights[(lo + d) // detectors]
-            want = w if segment < 0 or segment > w else segment
-            if counts[d] != want:
-                return 4, lo + d
-            counts[d] = 0
+        counts = np.zeros(size, dtype=np.int32)
+        cursor = np.empty(bits, dtype=np.int64)
+        problem, where = _check_block(post, block_indptr, lo, size, words, weights, detectors, segment, k, counts,
+                                      cursor)
+        problems[k] = problem
+        wheres[k] = where
+    for k in range(n_blocks):
+        if problems[k]:
+            return problems[k], wheres[k]
     return 0, 0

@@ -30,6 +30,7 @@ import zlib
 import numpy as np
 
 from . import _kernels
+from ._config import PARALLEL_LOCK
 from .errors import FormatVersionWarning, StoreFormatError
 
 MAGIC = b"\x89SIDX\r\n\x1a"
@@ -546,7 +547,8 @@ def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
         if tail_rows.shape[0] > 2 + int(np.log2(1 + tail_rows[-1, -1] - tail_rows[0, 0])):
             _fail("block_lo", f"{tail_rows.shape[0]} blocks in the last span, more than a store ever keeps", path)
         segment = -1 if v["segment"] is None else v["segment"]
-        problem, where = _kernels.check_postings(post, indptr, lo, hi, words, weights, detectors, segment)
+        with PARALLEL_LOCK:
+            problem, where = _kernels.check_postings(post, indptr, lo, hi, words, weights, detectors, segment)
         messages = {
             1: f"posting {where} points outside its block",
             2: f"posting {where} breaks the ascending order of its bit",
