@@ -455,7 +455,9 @@ def dedupe(
         becomes a candidate; the bands are chosen for it (default 0.99).
         ``recall=1`` means the exact index.
     bands : (int, int) or None
-        Banding: force ``bands`` bands of ``rows`` rows instead of choosing.
+        Banding: force ``bands`` bands of ``rows`` rows instead of choosing
+        (with ``method="auto"`` this means banding). The summary still
+        reports the predicted recall of the hardest pair for them.
     seed : int or None
         Seeds the min-hash functions (None: a fresh seed, kept in the
         summary). The index method uses no randomness.
