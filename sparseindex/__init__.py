@@ -16,12 +16,14 @@ Examples
 from . import model
 from .codes import Codes
 from .dedupe import DedupeSummary, dedupe
-from .errors import FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
+from .errors import CapacityWarning, FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
 from .model import PlanError
 from .planner import Plan, plan
+from .health import Health, ProbeResult
 from .store import BatchHits, Hits, Store
 
 __version__ = "0.1.0"
 
 __all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model",
-    "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "dedupe", "DedupeSummary", "__version__"]
+    "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "CapacityWarning",
+    "Health", "ProbeResult", "dedupe", "DedupeSummary", "__version__"]

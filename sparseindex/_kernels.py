@@ -254,7 +254,8 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
 
 
 @kernel
-def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed, bits, block_span, offset):
+def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed, bits, block_span, offset, usage,
+                            weight_hist):
     """Sample and index the detectors of packed rows in one pass, no temporaries.
 
     Block boundaries fall on multiples of ``block_span`` in the global
@@ -265,7 +266,9 @@ def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed
     then fill) instead of materialising every sample, so fresh memory is
     touched once, not four times. Row ``i`` of ``words`` becomes store
     row ``first_row + i``. Returns ``(block_indptr, block_lo, block_hi,
-    post, max_sample)``.
+    post, max_sample)``. On the way it adds every row's set bits to
+    ``usage`` (per-bit counts) and its weight to ``weight_hist``, nearly for
+    free since the row's bits are in hand.
     """
     rows = words.shape[0]
     first_detector = first_row * detectors
@@ -285,6 +288,9 @@ def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed
     total = 0
     for r in range(rows):
         w = _row_bits(words, r, row_bits)
+        for t in range(w):
+            usage[row_bits[t]] += 1
+        weight_hist[w] += 1
         take = w if (segment <= 0 or segment >= w) else segment
         if take > max_sample:
             max_sample = take
@@ -646,3 +652,39 @@ def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detec
         if problems[k]:
             return problems[k], wheres[k]
     return 0, 0
+
+
+# ---------------------------------------------------------------------------
+# bit usage (health)
+# ---------------------------------------------------------------------------
+
+
+@parallel_kernel
+def bit_usage(words, rows, skip):
+    """How many of ``words[rows]`` (or of every row, ``rows`` empty) set each bit.
+
+    Rows with ``skip[r]`` set are left out (``skip`` empty: none). Returns
+    int64 counts of length ``64 * words.shape[1]``. Threads count into
+    private rows of a table that is summed at the end.
+    """
+    n_words = words.shape[1]
+    width = 64 * n_words
+    n = rows.shape[0] if rows.shape[0] else words.shape[0]
+    chunks = max(1, min(n, 64))
+    table = np.zeros((chunks, width), dtype=np.int64)
+    for c in prange(chunks):
+        for i in range(c * n // chunks, (c + 1) * n // chunks):
+            r = rows[i] if rows.shape[0] else i
+            if skip.shape[0] and skip[r]:
+                continue
+            for w in range(n_words):
+                x = words[r, w]
+                while x != np.uint64(0):
+                    low = x & (~x + np.uint64(1))
+                    table[c, w * 64 + np.int64(popcount64(low - np.uint64(1)))] += 1
+                    x ^= low
+    out = np.zeros(width, dtype=np.int64)
+    for c in range(chunks):
+        for b in range(width):
+            out[b] += table[c, b]
+    return out

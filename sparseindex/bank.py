@@ -117,6 +117,8 @@ class DetectorBank:
         max_sample = self._max_sample
         segment = -1 if self.segment is None else self.segment
         code_ids = np.asarray(code_ids, dtype=np.int64)
+        usage = np.zeros(self.bits, dtype=np.int64)
+        weight_hist = np.zeros(self.bits + 1, dtype=np.int64)
         for r0 in range(0, rows, APPEND_CHUNK_ROWS):
             r1 = min(rows, r0 + APPEND_CHUNK_ROWS)
             *piece, chunk_max = _kernels.build_blocks_from_words(
@@ -129,6 +131,8 @@ class DetectorBank:
                 self.bits,
                 self.block_span,
                 offset,
+                usage,
+                weight_hist,
             )
             offset += piece[3].shape[0]
             pieces.append(piece)
@@ -148,7 +152,8 @@ class DetectorBank:
         for p in pieces:
             buffer[pos : pos + p[3].shape[0]] = p[3]
             pos += p[3].shape[0]
-        return PendingAppend(self.rows, rows, buffer, block_indptr, block_lo, block_hi, need, max_sample)
+        return PendingAppend(self.rows, rows, buffer, block_indptr, block_lo, block_hi, need, max_sample, usage,
+                             weight_hist)
 
     def commit_append(self, pending: "PendingAppend") -> None:
         """Make a prepared append visible (hold the store's write lock).
@@ -403,12 +408,16 @@ class DetectorBank:
 class PendingAppend:
     """What :meth:`DetectorBank.prepare_append` computed, waiting for commit."""
 
-    __slots__ = ("base_rows", "rows", "buffer", "block_indptr", "block_lo", "block_hi", "used", "max_sample")
+    __slots__ = ("base_rows", "rows", "buffer", "block_indptr", "block_lo", "block_hi", "used", "max_sample",
+                 "usage", "weight_hist")
 
-    def __init__(self, base_rows, rows, buffer, block_indptr, block_lo, block_hi, used, max_sample):
+    def __init__(self, base_rows, rows, buffer, block_indptr, block_lo, block_hi, used, max_sample, usage,
+                 weight_hist):
         self.base_rows, self.rows, self.buffer = base_rows, rows, buffer
         self.block_indptr, self.block_lo, self.block_hi = block_indptr, block_lo, block_hi
         self.used, self.max_sample = used, max_sample
+        #: set-bit counts per bit and the weight histogram of the new rows
+        self.usage, self.weight_hist = usage, weight_hist
 
 
 def _split_ranges(ranges, tasks):

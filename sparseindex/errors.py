@@ -15,7 +15,7 @@ Examples
 
 from __future__ import annotations
 
-__all__ = ["StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning"]
+__all__ = ["StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "CapacityWarning"]
 
 
 class StoreFormatError(ValueError):
@@ -44,3 +44,7 @@ class ReadOnlyStoreError(RuntimeError):
 
 class FormatVersionWarning(UserWarning):
     """A store file was written by a newer minor format version; unknown fields were ignored."""
+
+
+class CapacityWarning(UserWarning):
+    """An ``add`` took the store past its capacity at the false-hit target."""

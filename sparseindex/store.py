@@ -37,6 +37,18 @@ def _check_int(name: str, value, minimum: int) -> int:
     return int(value)
 
 
+def _check_fraction(value) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)) or not 0 < value <= 1:
+        raise ValueError(f"warn_fraction={value!r} must be a number in (0, 1]")
+    return float(value)
+
+
+def _check_chance(name, value) -> float:
+    if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)) or not 0 < value < 1:
+        raise ValueError(f"{name}={value!r} must be a chance strictly between 0 and 1")
+    return float(value)
+
+
 def _check_min_overlap(min_overlap) -> int:
     if min_overlap is None:
         return 0
@@ -216,16 +228,27 @@ class Store:
         self._writer = threading.Lock()
         self._read_only = None  # or the reason, e.g. "memory-mapped from 'x.sidx'"
         self._mapping = None  # keeps a memory-mapped file open
+        # health: per-bit set counts and the weight histogram of live codes
+        # (None until first needed after a load), serving counters, alerts
+        self._usage = np.zeros(bits, dtype=np.int64)
+        self._weight_hist = np.zeros(bits + 1, dtype=np.int64)
+        self._served = {"queries": 0, "hits": 0, "added": 0, "removed": 0}
+        self._served_lock = threading.Lock()
+        self._mutations = 0
+        self._probe = None
+        self._watch = None  # a health._Watch once watch() or for_target set one
 
     @classmethod
     def for_target(
-        cls, bits, active, *, false_hit, capacity, noise=0.0, recall=0.999, max_detectors=8, seed=None
+        cls, bits, active, *, false_hit, capacity, noise=0.0, recall=0.999, max_detectors=8, seed=None,
+        warn_fraction=0.8, on_status=None,
     ) -> "Store":
         """A store configured by :func:`sparseindex.plan` from targets.
 
         The plan (``store.plan``) keeps the targets so that reports can
         measure against them. Codes whose weight differs from ``active`` are
         still accepted; a detector samples ``min(segment, weight)`` bits.
+        ``warn_fraction`` and ``on_status`` are passed to :meth:`watch`.
 
         Raises
         ------
@@ -247,6 +270,7 @@ class Store:
         )
         store = cls(bits, threshold=chosen.threshold, segment=chosen.segment, detectors=chosen.detectors, seed=seed)
         store._plan = chosen
+        store.watch(on_status, warn_fraction=warn_fraction)
         return store
 
     @property
@@ -369,6 +393,43 @@ class Store:
             raise KeyError(f"{what}: id {int(arr[bad[0]])} was removed")
         return rows
 
+    # -- health bookkeeping -------------------------------------------------
+
+    def _bit_usage(self, rows=None) -> np.ndarray:
+        """Set-bit counts per bit of ``rows`` (None: every live row)."""
+        skip = np.zeros(0, dtype=bool)
+        if rows is None:
+            pick, skip = np.zeros(0, dtype=np.int64), self._removed[: self._rows]
+            if self._rows == 0:
+                return np.zeros(self._bits, dtype=np.int64)
+            words = self._words[: self._rows]
+        else:
+            pick, words = np.asarray(rows, dtype=np.int64), self._words
+            if pick.shape[0] == 0:
+                return np.zeros(self._bits, dtype=np.int64)
+        with PARALLEL_LOCK:
+            return _kernels.bit_usage(words, pick, skip)[: self._bits]
+
+    def _ensure_usage(self) -> None:
+        """Count bit usage of a loaded store once (O(N)); mutations keep it current after."""
+        if self._usage is None:
+            with self._writer:  # the same lock order as a mutation: writer mutex, then rw
+                if self._usage is None:
+                    with self._rw.reading():
+                        live = self._weights[: self._rows][~self._removed[: self._rows]]
+                        self._weight_hist = np.bincount(live, minlength=self._bits + 1).astype(np.int64)
+                        self._usage = self._bit_usage()
+
+    def _count(self, **amounts) -> None:
+        with self._served_lock:
+            for key, value in amounts.items():
+                self._served[key] += int(value)
+
+    def _after_change(self) -> None:
+        """Re-evaluate the status after a mutation; alerts fire here, outside every lock."""
+        if self._watch is not None:
+            self._watch.changed(self)
+
     # -- mutation -----------------------------------------------------------
 
     @contextmanager
@@ -421,7 +482,9 @@ class Store:
                 "no detector could ever fire for it"
             )
         with self._mutating("add"):
-            return self._add(batch, weights, m)
+            ids = self._add(batch, weights, m)
+        self._after_change()
+        return ids
 
     def _add(self, batch: Codes, weights: np.ndarray, m: int) -> np.ndarray:
         # Prepare everything where no query looks (new buffers, or the
@@ -460,6 +523,11 @@ class Store:
             self._words, self._weights, self._removed, self._row_ids = words, wts, removed, row_ids
             self._rows = need
             self._next_id += m
+            if self._usage is not None:
+                self._usage += pending.usage
+                self._weight_hist += pending.weight_hist
+            self._mutations += 1
+        self._count(added=m)
         return ids
 
     def remove(self, ids) -> None:
@@ -486,9 +554,18 @@ class Store:
                 dup_row = int(uniq[np.flatnonzero(counts > 1)[0]])
                 dup_id = int(self._ids_of_rows(np.array([dup_row]))[0])
                 raise KeyError(f"remove: id {dup_id} appears more than once in one call")
+            if self._usage is not None:
+                gone_usage = self._bit_usage(rows)
+                gone_weights = np.bincount(self._weights[rows], minlength=self._bits + 1)
             with self._rw.writing():
                 self._removed[rows] = True
                 self._removed_count += rows.shape[0]
+                if self._usage is not None:
+                    self._usage -= gone_usage
+                    self._weight_hist -= gone_weights
+                self._mutations += 1
+        self._count(removed=rows.shape[0])
+        self._after_change()
 
     def compact(self) -> None:
         """Reclaim removed rows and merge the postings into one block.
@@ -577,12 +654,14 @@ class Store:
         q_bits = q._csr()[1]
         with self._rw.reading():
             if self._rows == 0:
+                self._count(queries=1)
                 return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
             rows, overlaps = self._bank.scan_one(
                 q_bits, q._words[0], self._words, self._removed, min_ov, self._counters()
             )
             ids = self._ids_of_rows(rows)
         order = np.lexsort((ids, -overlaps))
+        self._count(queries=1, hits=ids.shape[0])
         return Hits(ids[order], overlaps[order])
 
     def query_many(self, codes, *, min_overlap=None) -> BatchHits:
@@ -597,6 +676,11 @@ class Store:
         """
         batch = as_codes(codes, self._bits, what="query_many")
         min_ov = _check_min_overlap(min_overlap)
+        result = self._query_batch(batch, min_ov)
+        self._count(queries=len(batch), hits=result.ids.shape[0])
+        return result
+
+    def _query_batch(self, batch: Codes, min_ov: int) -> BatchHits:
         n = len(batch)
         q_indptr, q_bits = batch._csr()
         with self._rw.reading():
@@ -644,6 +728,102 @@ class Store:
         with self._rw.reading():
             rows = np.flatnonzero(~self._removed[: self._rows])
             return self._ids_of_rows(rows)
+
+    # -- health -----------------------------------------------------------
+
+    def health(self, *, false_hit=None, warn_fraction=None, refresh=False):
+        """How full the store is: a :class:`~sparseindex.health.Health` report.
+
+        Cheap enough for every scrape: it reads running per-bit usage counts
+        and a weight histogram kept by ``add``/``remove`` (no scan of the
+        codes; a loaded store counts them once, on its first report) and
+        memoised model figures. The usage-aware estimate (a sample of
+        stored codes, ``model.usage_false_hits``) is recomputed once 5% of
+        the store has changed, or now with ``refresh=True``.
+
+        Parameters
+        ----------
+        false_hit : float or None
+            Target chance of a false hit per unrelated query; default the
+            one given to :meth:`watch`, else the plan's.
+        warn_fraction : float or None
+            Fill fraction where the status turns from healthy to filling
+            (default the watch's, else 0.8).
+
+        Examples
+        --------
+        >>> s = Store.for_target(2048, 40, false_hit=1e-6, capacity=50_000, seed=1)
+        >>> _ = s.add(Codes.random(1_000, 2048, 40, seed=2))
+        >>> h = s.health()
+        >>> h.status, h.items, h.capacity >= 50_000
+        ('healthy', 1000, True)
+        """
+        from . import health
+
+        if false_hit is not None:
+            false_hit = _check_chance("false_hit", false_hit)
+        if warn_fraction is not None:
+            warn_fraction = _check_fraction(warn_fraction)
+        return health.compute(self, false_hit=false_hit, warn_fraction=warn_fraction, refresh=bool(refresh))
+
+    def probe(self, queries=10_000, *, source="uniform", seed=None):
+        """Run random unrelated queries and measure the false-hit rate.
+
+        ``source="uniform"``: queries of the nominal weight (the plan's
+        ``active``, else the mean stored weight) with uniformly random bits;
+        ``"usage"``: drawn from the store's measured bit usage (the
+        usage-aware model's conditional Poisson queries). Every hit is false
+        by construction. Returns a :class:`~sparseindex.health.ProbeResult`
+        with the Clopper–Pearson 95% interval beside the model's prediction;
+        :meth:`health` shows the latest one. Probe queries do not count as
+        served queries.
+
+        Examples
+        --------
+        >>> s = Store(256, threshold=3, seed=1); _ = s.add(Codes.random(2_000, 256, 8, seed=1))
+        >>> r = s.probe(2_000, seed=3)
+        >>> r.queries, 0 < r.rate < 1, r.low <= r.rate <= r.high
+        (2000, True, True)
+        """
+        from . import health
+
+        return health.run_probe(self, queries, source=source, seed=seed)
+
+    def watch(self, on_status=None, *, warn_fraction=0.8, false_hit=None) -> None:
+        """Alert on status changes: ``on_status(previous, current, health)``.
+
+        The callback runs once each time an ``add`` or ``remove`` moves the
+        status between ``"healthy"``, ``"filling"`` (``warn_fraction`` of
+        capacity reached) and ``"saturated"`` (past capacity), in the thread
+        that made the change, after the change is committed; an exception it
+        raises becomes a ``RuntimeWarning``. Crossing capacity also issues a
+        :class:`~sparseindex.CapacityWarning`. ``false_hit`` sets the target
+        for a store without a plan.
+
+        Examples
+        --------
+        >>> seen = []
+        >>> s = Store(64, threshold=2, seed=0)
+        >>> s.watch(lambda old, new, h: seen.append((old, new)), false_hit=0.05, warn_fraction=0.5)
+        >>> import warnings
+        >>> with warnings.catch_warnings(record=True):
+        ...     for k in range(40):
+        ...         _ = s.add(Codes.random(1, 64, 4, seed=k))
+        >>> seen
+        [('healthy', 'filling'), ('filling', 'saturated')]
+        """
+        from . import health
+
+        if on_status is not None and not callable(on_status):
+            raise TypeError(f"on_status={on_status!r} must be callable or None")
+        warn_fraction = _check_fraction(warn_fraction)
+        if false_hit is not None:
+            false_hit = _check_chance("false_hit", false_hit)
+        elif self._plan is None:
+            raise ValueError("watch: this store has no plan; give false_hit=... (target chance per query)")
+        watcher = health._Watch(on_status, warn_fraction, false_hit)
+        self._watch = watcher
+        watcher.status = health.compute(self).status
 
     # -- persistence ------------------------------------------------------
 
@@ -751,6 +931,7 @@ class Store:
         store._row_ids = state.row_ids
         store._rows, store._next_id, store._removed_count = state.rows, state.next_id, state.removed_count
         store._plan = state.plan
+        store._usage = None  # counted on first use (health), not at load
         return store
 
     # -- invariants -------------------------------------------------------
@@ -783,6 +964,12 @@ class Store:
         else:
             assert n == self._next_id, f"identity row map but rows != next_id: {state}"
         assert self._bank.rows == n, f"bank rows {self._bank.rows} != {n}: {state}"
+        if self._usage is not None:
+            live = np.flatnonzero(~self._removed[:n])
+            l_ptr, l_bits = _kernels.unpack_indices(words[live], self._weights[live].astype(np.int64))
+            assert np.array_equal(self._usage, np.bincount(l_bits, minlength=self._bits)), f"bit usage stale: {state}"
+            want_hist = np.bincount(self._weights[live], minlength=self._bits + 1)
+            assert np.array_equal(self._weight_hist, want_hist), f"weight histogram stale: {state}"
         expected = None
         if deep and n:
             indptr, indices = _kernels.unpack_indices(words, self._weights[:n].astype(np.int64))

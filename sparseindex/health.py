@@ -1,0 +1,633 @@
+"""How full a store is: capacity, headroom, bit usage, probes and alerts.
+
+:meth:`Store.health` returns a :class:`Health`; :meth:`Store.probe` runs
+random unrelated queries and returns a :class:`ProbeResult`. This module
+reads the store (its running per-bit usage counts, weight histogram and
+serving counters) and the model; it never changes the store's codes.
+
+Two capacity figures are reported:
+
+* **uniform** — the hypergeometric model (``model.false_hit_per_code``)
+  for queries of the store's nominal weight with uniformly random bits;
+* **usage** — the usage-aware model (``model.usage_false_hits``): queries
+  whose bits follow the store's measured per-bit frequencies, evaluated
+  exactly on the detector samples of a random sample of stored codes, with
+  a standard error. It is computed once the store holds enough codes for the
+  frequencies to mean something (on average ``USAGE_MIN_COUNT`` codes per
+  bit) and refreshed after ``refresh_fraction`` of the store has changed.
+
+Measured frequencies carry binomial sampling noise (a bit used by a
+fraction f of N codes is measured with variance f(1-f)/N), which the
+usage-aware model would mistake for skew and so overstate false hits of a
+perfectly uniform store. The frequencies are therefore shrunk toward their
+mean by the positive-part James–Stein factor λ = max(0, 1 − noise variance
+/ observed variance) (James & Stein 1961; the empirical-Bayes reading of
+Efron & Morris, JASA 1973): λ ≈ 0 for uniform data, ≈ 1 for real skew.
+Probes with ``source="usage"`` draw from the same shrunk frequencies.
+
+The *operative* capacity is the uniform one unless the usage-aware per-code
+chance is higher by more than three standard errors — measurably worse data
+lowers the capacity; sampling noise alone never moves it (so the status does
+not flap).
+
+Status: ``"healthy"`` below ``warn_fraction`` of the operative capacity,
+``"filling"`` from there up to capacity, ``"saturated"`` past it, and
+``"unknown"`` when the store has no false-hit target.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import json
+import math
+import time
+import warnings
+
+import numpy as np
+
+from . import _kernels, model
+from .errors import CapacityWarning
+
+__all__ = ["Health", "ProbeResult", "STATUSES"]
+
+STATUSES = ("healthy", "filling", "saturated")
+UNKNOWN = "unknown"
+#: Mean set-bit count per bit below which measured usage is too noisy to use.
+USAGE_MIN_COUNT = 30
+#: Stored codes whose detector samples the usage-aware estimate evaluates.
+USAGE_SAMPLE = 256
+#: Sigmas by which the usage-aware chance must exceed the uniform one to count.
+USAGE_SIGMAS = 3.0
+
+
+def _finite(x):
+    return None if x is None or (isinstance(x, float) and not math.isfinite(x)) else x
+
+
+@dataclasses.dataclass(frozen=True)
+class ProbeResult:
+    """What a probe of random unrelated queries found.
+
+    Every hit of a probe query is a false hit by construction (the queries
+    are random). ``rate`` is the fraction of queries with at least one hit,
+    with the exact Clopper–Pearson 95% interval ``[low, high]`` (Clopper &
+    Pearson, Biometrika 1934); ``upper`` is the one-sided 95% upper bound,
+    the figure to quote when nothing was hit. ``predicted_rate`` is the
+    model's chance of at least one false hit per query (independence across
+    codes assumed) and ``predicted_hits`` its expected false hits per query
+    (exact by linearity), from the model matching ``source``.
+    """
+
+    source: str
+    queries: int
+    query_active: int
+    items: int
+    queries_hit: int
+    hits: int
+    rate: float
+    low: float
+    high: float
+    upper: float
+    hits_per_query: float
+    predicted_rate: float | None
+    predicted_hits: float | None
+    seed: int
+    seconds: float
+
+    def to_dict(self) -> dict:
+        return dataclasses.asdict(self)
+
+    def __str__(self) -> str:
+        if self.queries_hit:
+            seen = f"{self.rate:.3g} per query (95% CI {self.low:.3g}–{self.high:.3g})"
+        else:
+            seen = f"no hits: < {self.upper:.3g} per query (95% upper bound)"
+        pred = "" if self.predicted_rate is None else f"; model {self.predicted_rate:.3g}"
+        return (f"probe of {self.queries:,} {self.source} queries ({self.query_active} bits) on "
+                f"{self.items:,} codes: {seen}{pred}; {self.hits:,} false hits in all")
+
+
+@dataclasses.dataclass(frozen=True)
+class Health:
+    """A store's fill level and what the models predict for it.
+
+    Capacities and headroom are in codes; chances are per unrelated query.
+    Fields are None where they do not apply (no target, an empty store,
+    too few codes to measure usage).
+    """
+
+    status: str
+    items: int
+    removed_pending: int
+    bits: int
+    threshold: int
+    segment: int | None
+    detectors: int
+    query_active: int | None
+    planned_active: int | None
+    target_false_hit: float | None
+    target_capacity: int | None
+    target_noise: float | None
+    target_recall: float | None
+    warn_fraction: float
+    capacity: float | None
+    capacity_basis: str
+    capacity_uniform: float | None
+    capacity_usage: float | None
+    headroom_codes: float | None
+    headroom_fraction: float | None
+    fill_fraction: float | None
+    false_hit_now: float | None
+    false_hit_now_uniform: float | None
+    false_hit_now_usage: float | None
+    false_hit_at_capacity: float | None
+    per_code_uniform: float | None
+    per_code_usage: float | None
+    per_code_usage_stderr: float | None
+    usage_codes_sampled: int
+    usage_changes_since: int | None
+    usage_shrinkage: float | None
+    effective_bits: float | None
+    hottest_bit_load_ratio: float | None
+    unused_bits: int
+    weight_min: int | None
+    weight_mean: float | None
+    weight_max: int | None
+    weight_offset: float | None
+    probe: ProbeResult | None
+    queries_total: int
+    hits_total: int
+    codes_added_total: int
+    codes_removed_total: int
+    memory_bytes: int
+    seconds: float
+
+    def to_dict(self) -> dict:
+        """Plain values (JSON-ready); infinities become None, the probe a dict."""
+        out = {}
+        for f in dataclasses.fields(self):
+            value = getattr(self, f.name)
+            if isinstance(value, ProbeResult):
+                value = value.to_dict()
+            elif isinstance(value, float) and not math.isfinite(value):
+                value = None
+            out[f.name] = value
+        return out
+
+    def to_json(self, **kwargs) -> str:
+        return json.dumps(self.to_dict(), allow_nan=False, **kwargs)
+
+    def __str__(self) -> str:
+        return _text(self)
+
+    def to_openmetrics(self, prefix: str = "sparseindex") -> str:
+        """The OpenMetrics text exposition of this report, ending in ``# EOF``."""
+        return _openmetrics(self, prefix)
+
+
+# ---------------------------------------------------------------------------
+# computing
+# ---------------------------------------------------------------------------
+
+
+class _Cache:
+    """Per-store memo of the model figures (they change only with the data)."""
+
+    def __init__(self):
+        self.uniform = {}
+        self.usage = None  # (churn at estimate, items, query_active, UsageFalseHits)
+
+
+def _cache(store) -> _Cache:
+    if getattr(store, "_health_cache", None) is None:
+        store._health_cache = _Cache()
+    return store._health_cache
+
+
+def _churn(store) -> int:
+    served = store._served
+    return served["added"] + served["removed"]
+
+
+def _weights(hist: np.ndarray):
+    live = int(hist.sum())
+    if live == 0:
+        return None, None, None
+    used = np.flatnonzero(hist)
+    mean = float((np.arange(hist.shape[0]) * hist).sum() / live)
+    return int(used[0]), mean, int(used[-1])
+
+
+def _nominal_active(store, mean_weight):
+    if store.plan is not None:
+        return int(store.plan.active)
+    if mean_weight is None:
+        return None
+    return min(store.bits, max(store.threshold, int(round(mean_weight))))
+
+
+def _uniform(store, q, target):
+    """(per-code chance, capacity) under the uniform model; memoised."""
+    key = (q, target)
+    memo = _cache(store).uniform
+    if key not in memo:
+        segment = q if store.segment is None else min(store.segment, q)
+        threshold = min(store.threshold, segment)
+        per_code = float(model.false_hit_per_code(store.bits, q, segment, threshold, store.detectors, q))
+        cap = None if target is None else model.capacity(per_code, target)
+        memo[key] = (per_code, cap)
+    return memo[key]
+
+
+def _sample_detectors(store, count, seed):
+    """Detector samples of ``count`` random live codes: a list of (D, s) arrays."""
+    rows = np.flatnonzero(~store._removed[: store._rows])
+    rng = np.random.default_rng([store.seed, seed])
+    pick = np.sort(rng.choice(rows, size=min(count, rows.shape[0]), replace=False))
+    words = store._words[pick]
+    indptr, indices = _kernels.unpack_indices(words, store._weights[pick].astype(np.int64))
+    det_indptr, det_bits = store._bank.sample(indptr, indices, store._ids_of_rows(pick))
+    D = store.detectors
+    out = []
+    for k in range(pick.shape[0]):
+        a, b = det_indptr[k * D], det_indptr[(k + 1) * D]
+        out.append(det_bits[a:b].reshape(D, -1))
+    return out
+
+
+def usage_frequencies(usage: np.ndarray, items: int):
+    """Per-bit usage frequencies with the sampling noise shrunk out; ``(f, λ)``.
+
+    Examples
+    --------
+    >>> f, lam = usage_frequencies(np.array([50, 50, 50, 50]), 100)
+    >>> f.tolist(), lam
+    ([0.5, 0.5, 0.5, 0.5], 0.0)
+    >>> f, lam = usage_frequencies(np.array([90, 10, 90, 10]), 100)
+    >>> round(lam, 4), np.round(f, 4).tolist()
+    (0.9944, [0.8978, 0.1022, 0.8978, 0.1022])
+    """
+    f = usage.astype(np.float64) / items
+    mean = float(f.mean())
+    observed = float(f.var())
+    noise = float((f * (1.0 - f)).mean()) / items
+    lam = max(0.0, 1.0 - noise / observed) if observed > 0 else 0.0
+    return np.clip(mean + lam * (f - mean), 0.0, 1.0), lam
+
+
+def _usage_estimate(store, q, usage, items, refresh_fraction, force):
+    """The usage-aware estimate (memoised until the store changes enough), or None."""
+    if items == 0 or q is None or usage.sum() < USAGE_MIN_COUNT * store.bits:
+        return None
+    cache = _cache(store)
+    churn = _churn(store)
+    if cache.usage is not None and not force:
+        then, then_items, then_q, estimate = cache.usage
+        if then_q == q and abs(churn - then) < max(1, refresh_fraction * max(items, then_items)):
+            return churn - then, estimate
+    codes = _sample_detectors(store, USAGE_SAMPLE, churn)
+    freqs, lam = usage_frequencies(usage, items)
+    p = model.usage_bernoulli(freqs, q)
+    estimate = model.usage_false_hits(p, codes, store.threshold, q, items)
+    cache.usage = (churn, items, q, (estimate, lam))
+    return 0, (estimate, lam)
+
+
+def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh_fraction=0.05) -> Health:
+    """The :class:`Health` of ``store`` (call :meth:`Store.health`)."""
+    started = time.perf_counter()
+    store._ensure_usage()
+    with store._rw.reading():
+        usage = store._usage.copy()
+        hist = store._weight_hist.copy()
+        items = store._rows - store._removed_count
+        removed_pending = store._removed_count
+        memory = store._nbytes()
+        with store._served_lock:
+            served = dict(store._served)
+        plan = store.plan
+        watch = store._watch
+        target = false_hit
+        if target is None and watch is not None:
+            target = watch.false_hit
+        if target is None and plan is not None:
+            target = plan.target_false_hit
+        warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
+        w_min, w_mean, w_max = _weights(hist)
+        q = _nominal_active(store, w_mean)
+        per_uniform = cap_uniform = None
+        if q is not None:
+            per_uniform, cap_uniform = _uniform(store, q, target)
+        est = _usage_estimate(store, q, usage, items, refresh_fraction, refresh)
+    per_usage = se_usage = cap_usage = None
+    sampled, since, lam = 0, None, None
+    if est is not None:
+        since, (e, lam) = est
+        per_usage, se_usage, sampled = e.per_code, e.per_code_stderr, e.codes_sampled
+        if target is not None:
+            cap_usage = model.capacity(min(1.0, per_usage), target) if per_usage > 0 else math.inf
+    basis = "uniform"
+    per_op, cap = per_uniform, cap_uniform
+    if per_usage is not None and per_uniform is not None and per_usage - USAGE_SIGMAS * (se_usage or 0.0) > per_uniform:
+        basis, per_op, cap = "usage", per_usage, cap_usage
+    status, headroom, headroom_frac, fill = UNKNOWN, None, None, None
+    if target is not None and items == 0:
+        status = "healthy"  # nothing stored yet: no weight to size the model with, no false hit possible
+    if cap is not None:
+        status = classify(items, cap, warn)
+        headroom = max(0.0, float(cap) - items) if math.isfinite(cap) else math.inf
+        headroom_frac = headroom / cap if cap and math.isfinite(cap) else (1.0 if cap else 0.0)
+        fill = items / cap if cap and math.isfinite(cap) else (0.0 if cap else math.inf)
+    now_u = None if per_uniform is None else float(model.store_false_hit(per_uniform, items))
+    now_s = None if per_usage is None else float(model.store_false_hit(min(1.0, per_usage), items))
+    at_cap = None
+    if cap is not None and math.isfinite(cap):
+        at_cap = float(model.store_false_hit(min(1.0, per_op), int(cap)))
+    nonzero = usage[usage > 0]
+    total = float(usage.sum())
+    return Health(
+        status=status, items=items, removed_pending=removed_pending, bits=store.bits,
+        threshold=store.threshold, segment=store.segment, detectors=store.detectors, query_active=q,
+        planned_active=None if plan is None else int(plan.active),
+        target_false_hit=target, target_capacity=None if plan is None else int(plan.target_capacity),
+        target_noise=None if plan is None else float(plan.noise),
+        target_recall=None if plan is None else float(plan.target_recall),
+        warn_fraction=float(warn), capacity=cap, capacity_basis=basis, capacity_uniform=cap_uniform,
+        capacity_usage=cap_usage, headroom_codes=headroom, headroom_fraction=headroom_frac, fill_fraction=fill,
+        false_hit_now=now_s if basis == "usage" else now_u, false_hit_now_uniform=now_u,
+        false_hit_now_usage=now_s, false_hit_at_capacity=at_cap, per_code_uniform=per_uniform,
+        per_code_usage=per_usage, per_code_usage_stderr=se_usage, usage_codes_sampled=sampled,
+        usage_changes_since=since, usage_shrinkage=lam,
+        # Hill's effective number of order 2 (inverse Simpson): (sum u)^2 / sum u^2
+        effective_bits=None if total == 0 else total * total / float((usage.astype(np.float64) ** 2).sum()),
+        hottest_bit_load_ratio=None if total == 0 else float(usage.max()) / (total / store.bits),
+        unused_bits=int(store.bits - nonzero.shape[0]),
+        weight_min=w_min, weight_mean=w_mean, weight_max=w_max,
+        weight_offset=None if (plan is None or w_mean is None) else w_mean - plan.active,
+        probe=store._probe, queries_total=served["queries"], hits_total=served["hits"],
+        codes_added_total=served["added"], codes_removed_total=served["removed"], memory_bytes=memory,
+        seconds=time.perf_counter() - started,
+    )
+
+
+def classify(items, capacity, warn_fraction) -> str:
+    """Status level of ``items`` codes against ``capacity``.
+
+    Examples
+    --------
+    >>> classify(10, 100, 0.8), classify(80, 100, 0.8), classify(101, 100, 0.8)
+    ('healthy', 'filling', 'saturated')
+    """
+    if items > capacity:
+        return "saturated"
+    if items >= warn_fraction * capacity:
+        return "filling"
+    return "healthy"
+
+
+# ---------------------------------------------------------------------------
+# probing
+# ---------------------------------------------------------------------------
+
+
+def run_probe(store, queries=10_000, *, source="uniform", seed=None, batch=2048) -> ProbeResult:
+    """Random unrelated queries against ``store`` (call :meth:`Store.probe`)."""
+    from .codes import Codes
+
+    if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
+        raise ValueError(f"probe: queries={queries!r} must be a positive integer")
+    if source not in ("uniform", "usage"):
+        raise ValueError(f"probe: source={source!r} must be 'uniform' or 'usage'")
+    if seed is None:
+        seed = int(np.random.SeedSequence().generate_state(1)[0])
+    started = time.perf_counter()
+    health = compute(store)
+    q = health.query_active
+    if q is None or health.items == 0:
+        raise ValueError("probe: the store is empty; there is nothing to probe")
+    if source == "uniform":
+        probes = Codes.random(int(queries), store.bits, q, seed=seed)
+        predicted = health.per_code_uniform
+    else:
+        store._ensure_usage()
+        with store._rw.reading():
+            usage = store._usage.copy()
+        if not usage.any():
+            raise ValueError("probe: no bit is in use; a usage probe needs stored codes")
+        p = model.usage_bernoulli(usage_frequencies(usage, health.items)[0], q)
+        probes = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=store.bits)
+        predicted = health.per_code_usage
+    queries_hit, hits = 0, 0
+    items = health.items
+    for a in range(0, int(queries), batch):
+        result = store._query_batch(probes[a : a + batch], 0)
+        counts = result.counts
+        queries_hit += int(np.count_nonzero(counts))
+        hits += int(counts.sum())
+    n = int(queries)
+    low, high = model.clopper_pearson(queries_hit, n)
+    upper = model.clopper_pearson_upper(queries_hit, n)
+    result = ProbeResult(
+        source=source, queries=n, query_active=q, items=items, queries_hit=queries_hit, hits=hits,
+        rate=queries_hit / n, low=float(low), high=float(high), upper=float(upper), hits_per_query=hits / n,
+        predicted_rate=None if predicted is None else float(model.store_false_hit(min(1.0, predicted), items)),
+        predicted_hits=None if predicted is None else float(items * predicted),
+        seed=int(seed), seconds=time.perf_counter() - started,
+    )
+    store._probe = result
+    return result
+
+
+# ---------------------------------------------------------------------------
+# alerts
+# ---------------------------------------------------------------------------
+
+
+class _Watch:
+    """Status alerts of one store: a callback per change, a warning past capacity."""
+
+    def __init__(self, callback, warn_fraction, false_hit):
+        self.callback = callback
+        self.warn_fraction = warn_fraction
+        self.false_hit = false_hit
+        self.status = None
+
+    def changed(self, store) -> None:
+        health = compute(store)
+        previous, current = self.status, health.status
+        self.status = current
+        if previous is None or previous == current:
+            return
+        if current == "saturated":
+            warnings.warn(
+                f"the store now holds {health.items:,} codes, past its capacity of {_count(health.capacity)} "
+                f"at the false-hit target {health.target_false_hit:g} per query "
+                f"(predicted now: {health.false_hit_now:.3g})",
+                CapacityWarning,
+                stacklevel=4,
+            )
+        if self.callback is not None:
+            try:
+                self.callback(previous, current, health)
+            except Exception as exc:  # an alert hook must not break ingestion
+                warnings.warn(f"on_status callback raised {exc!r}", RuntimeWarning, stacklevel=4)
+
+
+# ---------------------------------------------------------------------------
+# output
+# ---------------------------------------------------------------------------
+
+
+def _count(x) -> str:
+    if x is None:
+        return "n/a"
+    if isinstance(x, float) and not math.isfinite(x):
+        return "unbounded"
+    return f"{int(x):,}"
+
+
+def _chance(x) -> str:
+    return "n/a" if x is None else f"{x:.3g}"
+
+
+def _text(h: Health) -> str:
+    lines = [f"status: {h.status.upper()}  ({h.items:,} codes stored, {h.removed_pending:,} removed awaiting compact)"]
+    if h.target_false_hit is not None:
+        lines.append(
+            f"capacity at {h.target_false_hit:g} false hits per query: {_count(h.capacity)} codes "
+            f"({h.capacity_basis} model; uniform {_count(h.capacity_uniform)}, "
+            f"usage-aware {_count(h.capacity_usage)})"
+        )
+        if h.fill_fraction is not None:
+            lines.append(
+                f"headroom: {_count(h.headroom_codes)} codes ({100 * h.headroom_fraction:.1f}% left; "
+                f"warning at {100 * h.warn_fraction:.0f}% full)"
+            )
+    else:
+        lines.append("capacity: no false-hit target (create with for_target or call watch(false_hit=...))")
+    lines.append(
+        f"false hit per unrelated query now: {_chance(h.false_hit_now)} (uniform {_chance(h.false_hit_now_uniform)}, "
+        f"usage-aware {_chance(h.false_hit_now_usage)}"
+        + (f" from {h.usage_codes_sampled} sampled codes" if h.usage_codes_sampled else "")
+        + f"); at capacity {_chance(h.false_hit_at_capacity)}"
+    )
+    if h.effective_bits is not None:
+        lines.append(
+            f"bit usage: {h.effective_bits:,.0f} of {h.bits:,} bits effectively in use, hottest bit "
+            f"{h.hottest_bit_load_ratio:.2f}x the mean load, {h.unused_bits:,} bits unused"
+        )
+    if h.weight_mean is not None:
+        planned = "" if h.planned_active is None else f"; planned {h.planned_active} ({h.weight_offset:+.2f})"
+        lines.append(
+            f"code weight: {h.weight_min}..{h.weight_max} set bits, mean {h.weight_mean:.2f}{planned}"
+        )
+    if h.probe is not None:
+        lines.append(str(h.probe))
+    lines.append(
+        f"served: {h.queries_total:,} queries, {h.hits_total:,} hits, {h.codes_added_total:,} codes added, "
+        f"{h.codes_removed_total:,} removed; memory {h.memory_bytes / 2**20:,.1f} MiB"
+    )
+    lines.append("hits are probabilistic evidence, not proof of identity: verify before acting on one.")
+    return "\n".join(lines)
+
+
+def _om_value(x) -> str:
+    if isinstance(x, float):
+        if math.isinf(x):
+            return "+Inf" if x > 0 else "-Inf"
+        return repr(x)
+    return str(int(x))
+
+
+def _labels(labels: dict) -> str:
+    if not labels:
+        return ""
+    parts = []
+    for k, v in labels.items():
+        v = str(v).replace("\\", "\\\\").replace("\n", "\\n").replace('"', '\\"')
+        parts.append(f'{k}="{v}"')
+    return "{" + ",".join(parts) + "}"
+
+
+def metric_table(h: Health, prefix: str = "sparseindex"):
+    """``[(family, type, unit, help, [(sample name, labels, value)])]`` for a report.
+
+    The one list both the OpenMetrics text and the tests read; families
+    whose value does not apply (None) are left out.
+    """
+    p = prefix
+    fams = []
+
+    def gauge(name, unit, text, samples):
+        samples = [(n, lab, v) for n, lab, v in samples if v is not None]
+        if samples:
+            fams.append((f"{p}_{name}", "gauge", unit, text, [(f"{p}_{n}", lab, v) for n, lab, v in samples]))
+
+    def counter(name, text, value):
+        fams.append((f"{p}_{name}", "counter", "", text, [(f"{p}_{name}_total", {}, value)]))
+
+    fams.append((f"{p}_store", "info", "", "Store parameters.", [(f"{p}_store_info", {
+        "bits": h.bits, "threshold": h.threshold, "segment": "all" if h.segment is None else h.segment,
+        "detectors": h.detectors, "capacity_basis": h.capacity_basis}, 1)]))
+    fams.append((f"{p}_status", "stateset", "", "Fill status against the false-hit target.",
+                 [(f"{p}_status", {f"{p}_status": s}, int(h.status == s)) for s in STATUSES + (UNKNOWN,)]))
+    gauge("items", "", "Codes stored (removed ones excluded).", [("items", {}, h.items)])
+    gauge("removed_pending", "", "Removed codes whose space compact has not reclaimed.",
+          [("removed_pending", {}, h.removed_pending)])
+    gauge("capacity_codes", "codes", "Codes the store can hold at its false-hit target.",
+          [("capacity_codes", {"model": "operative"}, h.capacity),
+           ("capacity_codes", {"model": "uniform"}, h.capacity_uniform),
+           ("capacity_codes", {"model": "usage"}, h.capacity_usage)])
+    gauge("headroom_codes", "codes", "Codes that can still be added before capacity.",
+          [("headroom_codes", {}, h.headroom_codes)])
+    gauge("headroom_ratio", "ratio", "Headroom as a fraction of capacity.", [("headroom_ratio", {}, h.headroom_fraction)])
+    gauge("fill_ratio", "ratio", "Items divided by capacity.", [("fill_ratio", {}, h.fill_fraction)])
+    gauge("target_false_hit_ratio", "ratio", "Target chance of a false hit per unrelated query.",
+          [("target_false_hit_ratio", {}, h.target_false_hit)])
+    gauge("false_hit_ratio", "ratio", "Predicted chance of a false hit per unrelated query.",
+          [("false_hit_ratio", {"model": "operative", "at": "now"}, h.false_hit_now),
+           ("false_hit_ratio", {"model": "uniform", "at": "now"}, h.false_hit_now_uniform),
+           ("false_hit_ratio", {"model": "usage", "at": "now"}, h.false_hit_now_usage),
+           ("false_hit_ratio", {"model": "operative", "at": "capacity"}, h.false_hit_at_capacity)])
+    gauge("effective_bits", "bits", "Effective number of bits in use (inverse Simpson index).",
+          [("effective_bits", {}, h.effective_bits)])
+    gauge("unused_bits", "bits", "Bits no stored code sets.", [("unused_bits", {}, h.unused_bits)])
+    gauge("hottest_bit_load_ratio", "ratio", "Load of the most used bit divided by the mean load.",
+          [("hottest_bit_load_ratio", {}, h.hottest_bit_load_ratio)])
+    gauge("code_weight_bits", "bits", "Set bits per stored code.",
+          [("code_weight_bits", {"stat": "min"}, h.weight_min), ("code_weight_bits", {"stat": "mean"}, h.weight_mean),
+           ("code_weight_bits", {"stat": "max"}, h.weight_max)])
+    gauge("planned_active_bits", "bits", "Set bits per code the plan assumed.",
+          [("planned_active_bits", {}, h.planned_active)])
+    gauge("memory_bytes", "bytes", "Memory held by codes, postings and bookkeeping.",
+          [("memory_bytes", {}, h.memory_bytes)])
+    if h.probe is not None:
+        pr = h.probe
+        gauge("probe_false_hit_ratio", "ratio", "False-hit rate per query a probe observed, with its 95% interval.",
+              [("probe_false_hit_ratio", {"source": pr.source, "value": "observed"}, pr.rate),
+               ("probe_false_hit_ratio", {"source": pr.source, "value": "low"}, pr.low),
+               ("probe_false_hit_ratio", {"source": pr.source, "value": "high"}, pr.high),
+               ("probe_false_hit_ratio", {"source": pr.source, "value": "upper"}, pr.upper),
+               ("probe_false_hit_ratio", {"source": pr.source, "value": "predicted"}, pr.predicted_rate)])
+        gauge("probe_queries", "", "Queries the latest probe ran.", [("probe_queries", {"source": pr.source}, pr.queries)])
+    counter("queries", "Queries answered.", h.queries_total)
+    counter("hits", "Hits returned.", h.hits_total)
+    counter("codes_added", "Codes added.", h.codes_added_total)
+    counter("codes_removed", "Codes removed.", h.codes_removed_total)
+    return fams
+
+
+def _openmetrics(h: Health, prefix: str) -> str:
+    if not isinstance(prefix, str) or not prefix or not all(c.isalnum() or c == "_" for c in prefix) \
+            or prefix[0].isdigit():
+        raise ValueError(f"prefix={prefix!r} must be a metric name: letters, digits and '_', not starting with a digit")
+    out = []
+    for family, kind, unit, text, samples in metric_table(h, prefix):
+        out.append(f"# TYPE {family} {kind}")
+        if unit:
+            out.append(f"# UNIT {family} {unit}")
+        out.append(f"# HELP {family} {text}")
+        for name, labels, value in samples:
+            out.append(f"{name}{_labels(labels)} {_om_value(value)}")
+    out.append("# EOF")
+    return "\n".join(out) + "\n"
