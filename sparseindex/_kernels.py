@@ -255,7 +255,7 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
 
 @kernel
 def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed, bits, block_span, offset, usage,
-                            weight_hist):
+                            weight_hist, count_usage=True):
     """Sample and index the detectors of packed rows in one pass, no temporaries.
 
     Block boundaries fall on multiples of ``block_span`` in the global
@@ -266,9 +266,10 @@ def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed
     then fill) instead of materialising every sample, so fresh memory is
     touched once, not four times. Row ``i`` of ``words`` becomes store
     row ``first_row + i``. Returns ``(block_indptr, block_lo, block_hi,
-    post, max_sample)``. On the way it adds every row's set bits to
-    ``usage`` (per-bit counts) and its weight to ``weight_hist``, nearly for
-    free since the row's bits are in hand.
+    post, max_sample)``. On the way (``count_usage``) it adds every row's set
+    bits to ``usage`` (per-bit counts) and its weight to ``weight_hist``,
+    nearly for free since the row's bits are in hand (the benchmark turns it
+    off to measure that).
     """
     rows = words.shape[0]
     first_detector = first_row * detectors
@@ -288,9 +289,10 @@ def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed
     total = 0
     for r in range(rows):
         w = _row_bits(words, r, row_bits)
-        for t in range(w):
-            usage[row_bits[t]] += 1
-        weight_hist[w] += 1
+        if count_usage:
+            for t in range(w):
+                usage[row_bits[t]] += 1
+            weight_hist[w] += 1
         take = w if (segment <= 0 or segment >= w) else segment
         if take > max_sample:
             max_sample = take

@@ -97,7 +97,7 @@ class DetectorBank:
         """
         self.commit_append(self.prepare_append(words, code_ids))
 
-    def prepare_append(self, words: np.ndarray, code_ids: np.ndarray) -> "PendingAppend":
+    def prepare_append(self, words: np.ndarray, code_ids: np.ndarray, count_usage: bool = True) -> "PendingAppend":
         """Everything an append computes, without changing what readers see.
 
         Wraps kernel ``build_blocks_from_words``, in chunks of
@@ -133,6 +133,7 @@ class DetectorBank:
                 offset,
                 usage,
                 weight_hist,
+                count_usage,
             )
             offset += piece[3].shape[0]
             pieces.append(piece)

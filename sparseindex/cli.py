@@ -16,6 +16,7 @@ from . import __version__
 #: Subcommand name -> module (inside this package) with ``add_parser`` and ``run``.
 COMMANDS = {
     "plan": "._cli_plan",
+    "health": "._cli_health",
     "dedupe": "._cli_dedupe",
 }
 

@@ -26,9 +26,9 @@ Efron & Morris, JASA 1973): λ ≈ 0 for uniform data, ≈ 1 for real skew.
 Probes with ``source="usage"`` draw from the same shrunk frequencies.
 
 The *operative* capacity is the uniform one unless the usage-aware per-code
-chance is higher by more than three standard errors — measurably worse data
-lowers the capacity; sampling noise alone never moves it (so the status does
-not flap).
+chance is higher by more than three standard errors and by more than 10% —
+measurably and materially worse data lowers the capacity; sampling noise
+alone never moves it (so the status does not flap).
 
 Status: ``"healthy"`` below ``warn_fraction`` of the operative capacity,
 ``"filling"`` from there up to capacity, ``"saturated"`` past it, and
@@ -58,6 +58,8 @@ USAGE_MIN_COUNT = 30
 USAGE_SAMPLE = 256
 #: Sigmas by which the usage-aware chance must exceed the uniform one to count.
 USAGE_SIGMAS = 3.0
+#: ... and the relative excess it must have (smaller differences do not matter).
+USAGE_MARGIN = 0.10
 
 
 def _finite(x):
@@ -328,7 +330,9 @@ def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh
             cap_usage = model.capacity(min(1.0, per_usage), target) if per_usage > 0 else math.inf
     basis = "uniform"
     per_op, cap = per_uniform, cap_uniform
-    if per_usage is not None and per_uniform is not None and per_usage - USAGE_SIGMAS * (se_usage or 0.0) > per_uniform:
+    if (per_usage is not None and per_uniform is not None
+            and per_usage - USAGE_SIGMAS * (se_usage or 0.0) > per_uniform
+            and per_usage > (1 + USAGE_MARGIN) * per_uniform):
         basis, per_op, cap = "usage", per_usage, cap_usage
     status, headroom, headroom_frac, fill = UNKNOWN, None, None, None
     if target is not None and items == 0:
