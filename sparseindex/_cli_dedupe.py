@@ -187,8 +187,6 @@ def run(args):
         labels, summary = dedupe(codes, min_overlap=args.min_overlap, mode=args.mode, method=args.method,
                                  recall=args.recall, seed=args.seed, progress=bar or False, return_summary=True)
     except (InputError, ValueError, TypeError) as exc:
-        if bar is not None:
-            bar.close()
         message = " ".join(str(exc).split())
         print(f"sparseindex dedupe: {message}", file=sys.stderr)
         return 2

@@ -136,10 +136,13 @@ class DedupeSummary:
 
     def __str__(self) -> str:
         lines = [
-            f"{self.codes:,} codes of {self.bits:,} bits, min overlap {self.min_overlap}, mode {self.mode}",
+            f"{self.codes:,} code{'' if self.codes == 1 else 's'} of {self.bits:,} bits, "
+            f"min overlap {self.min_overlap}, mode {self.mode}",
             f"  method: {self.method} ({self.reason})",
         ]
-        if self.method == "banding":
+        if self.method == "banding" and self.worst_jaccard is None:
+            lines.append(f"  bands: {self.bands} of {self.rows} rows, seed {self.seed}; no two codes can match")
+        elif self.method == "banding":
             lines.append(
                 f"  bands: {self.bands} of {self.rows} rows, seed {self.seed}; predicted candidate recall "
                 f"{_fmt_recall(self.predicted_recall)} for the hardest pair (Jaccard {self.worst_jaccard:.4f})"

@@ -279,7 +279,9 @@ def test_empty_and_single_batches():
     labels, s = dedupe(Codes.from_indices([], bits=16), min_overlap=2, return_summary=True)
     assert labels.shape == (0,) and s.groups == 0 and s.largest_group == 0
     for method in ("auto", "banding", "index"):
-        assert dedupe([[1, 2, 3]], min_overlap=2, bits=16, method=method).tolist() == [0]
+        labels, s = dedupe([[1, 2, 3]], min_overlap=2, bits=16, method=method, return_summary=True)
+        assert labels.tolist() == [0] and s.groups == 1 and s.worst_jaccard is None
+        assert "1 code of 16 bits" in str(s)
 
 
 def test_progress_callable_hears_each_stage():
