@@ -690,3 +690,34 @@ def bit_usage(words, rows, skip):
         for b in range(width):
             out[b] += table[c, b]
     return out
+
+
+@kernel
+def matches_in_rows(q_words, words, rows, min_overlap):
+    """Every (query, row) with overlap >= min_overlap, rows taken from ``rows``.
+
+    ``q_words`` holds one packed query per row. Returns ``(counts, hit_rows,
+    overlaps)``: query ``i``'s matches are the next ``counts[i]`` entries,
+    in the order of ``rows``. Two passes (count, then fill). O(queries *
+    len(rows) * words).
+    """
+    n_q = q_words.shape[0]
+    counts = np.zeros(n_q, dtype=np.int64)
+    for i in range(n_q):
+        for t in range(rows.shape[0]):
+            if _row_overlap(words[rows[t]], q_words[i]) >= min_overlap:
+                counts[i] += 1
+    total = 0
+    for i in range(n_q):
+        total += counts[i]
+    hit_rows = np.empty(total, dtype=np.int64)
+    overlaps = np.empty(total, dtype=np.int64)
+    n = 0
+    for i in range(n_q):
+        for t in range(rows.shape[0]):
+            ov = _row_overlap(words[rows[t]], q_words[i])
+            if ov >= min_overlap:
+                hit_rows[n] = rows[t]
+                overlaps[n] = ov
+                n += 1
+    return counts, hit_rows, overlaps

@@ -530,6 +530,111 @@ class Store:
         self._count(added=m)
         return ids
 
+    def find_or_add(self, codes, *, min_overlap):
+        """Add only what is new: return each code's match or its new id.
+
+        For each code in order: if a stored code — or an earlier code of the
+        same batch that was added — has full overlap ``>= min_overlap`` with
+        it, its id is that code's (greatest overlap, ties to the smallest id)
+        and ``is_new`` is False; otherwise it is added. Returns ``(ids,
+        is_new)``. Exact: candidates come from the detector index where its
+        threshold guarantees them (a stored code of weight ``w`` is sure to
+        fire when ``min_overlap >= threshold + w - min(segment, w)``) and
+        from a scan of the other stored codes; every match is verified on
+        the packed codes, within the batch too. The whole call is one
+        mutation: no other change interleaves, and queries see all of its
+        additions or none.
+
+        Raises
+        ------
+        ValueError
+            A bad row (nothing is added), or a code lighter than
+            ``threshold`` (it could never be recalled if added).
+
+        Examples
+        --------
+        >>> s = Store(bits=64, threshold=2, seed=0)
+        >>> _ = s.add([[1, 2, 3, 4, 5]])
+        >>> ids, new = s.find_or_add([[1, 2, 3, 4, 6], [20, 21, 22], [20, 21, 22, 23]], min_overlap=3)
+        >>> ids.tolist(), new.tolist()
+        ([0, 1, 1], [False, True, False])
+        """
+        batch = as_codes(codes, self._bits, what="find_or_add")
+        m = _check_int("min_overlap", min_overlap, 1)
+        n = len(batch)
+        if n == 0:
+            return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=bool)
+        weak = np.flatnonzero(batch._weights < self._threshold)
+        if weak.size:
+            r = int(weak[0])
+            raise ValueError(
+                f"find_or_add: row {r} has {int(batch._weights[r])} set bits, fewer than "
+                f"threshold={self._threshold}: it could never be recalled if added"
+            )
+        with self._mutating("find_or_add"):
+            stored = self._matches_in_store(batch, m)
+            inner = _matches_within(batch, m)
+            ids = np.empty(n, dtype=np.int64)
+            is_new = np.zeros(n, dtype=bool)
+            next_id = self._next_id
+            for i in range(n):
+                best_id, best_ov = -1, -1
+                a, b = stored.indptr[i], stored.indptr[i + 1]
+                if b > a:  # ordered by overlap desc, id asc
+                    best_id, best_ov = int(stored.ids[a]), int(stored.overlaps[a])
+                a, b = inner.indptr[i], inner.indptr[i + 1]
+                for j, ov in zip(inner.ids[a:b].tolist(), inner.overlaps[a:b].tolist()):
+                    if j >= i or not is_new[j]:
+                        continue
+                    cand = int(ids[j])
+                    if ov > best_ov or (ov == best_ov and cand < best_id):
+                        best_id, best_ov = cand, ov
+                if best_id >= 0:
+                    ids[i] = best_id
+                else:
+                    ids[i] = next_id
+                    next_id += 1
+                    is_new[i] = True
+            new_rows = np.flatnonzero(is_new)
+            if new_rows.size:
+                fresh = batch if new_rows.size == n else Codes._wrap(
+                    np.ascontiguousarray(batch._words[new_rows]), self._bits)
+                added = self._add(fresh, fresh._weights, new_rows.size)
+                assert np.array_equal(added, ids[new_rows])
+        if new_rows.size:
+            self._after_change()
+        return ids, is_new
+
+    def _matches_in_store(self, batch: Codes, m: int) -> BatchHits:
+        """Every stored code with overlap >= m with each batch code (complete and exact)."""
+        with self._rw.reading():
+            hits = self._query_batch(batch, m)
+            n = self._rows
+            if n == 0:
+                return hits
+            sample = self._weights[:n] if self._segment is None else np.minimum(self._weights[:n], self._segment)
+            # the detectors are sure to fire for rows with m >= threshold + weight - sample
+            unsure = np.flatnonzero(
+                ~self._removed[:n]
+                & (self._weights[:n] >= m)
+                & (m < self._threshold + self._weights[:n] - sample)
+            )
+            if unsure.size == 0:
+                return hits
+            counts, rows, overlaps = _kernels.matches_in_rows(batch._words, self._words, unsure, m)
+            extra_ids = self._ids_of_rows(rows)
+        which = np.concatenate([np.repeat(np.arange(len(batch)), hits.counts), np.repeat(np.arange(len(batch)), counts)])
+        all_ids = np.concatenate([hits.ids, extra_ids])
+        all_ov = np.concatenate([hits.overlaps, overlaps])
+        order = np.lexsort((all_ids, -all_ov, which))
+        which, all_ids, all_ov = which[order], all_ids[order], all_ov[order]
+        keep = np.ones(which.shape[0], dtype=bool)  # a row both fired and was scanned: keep one
+        keep[1:] = (which[1:] != which[:-1]) | (all_ids[1:] != all_ids[:-1])
+        which, all_ids, all_ov = which[keep], all_ids[keep], all_ov[keep]
+        indptr = np.zeros(len(batch) + 1, dtype=np.int64)
+        np.cumsum(np.bincount(which, minlength=len(batch)), out=indptr[1:])
+        return BatchHits(indptr, all_ids, all_ov)
+
     def remove(self, ids) -> None:
         """Remove codes by id; they never come back and their ids are not reused.
 
@@ -975,6 +1080,24 @@ class Store:
             indptr, indices = _kernels.unpack_indices(words, self._weights[:n].astype(np.int64))
             expected = self._bank.sample(indptr, indices, self._ids_of_rows(np.arange(n)))
         self._bank._check(expected)
+
+
+def _matches_within(batch: Codes, m: int) -> BatchHits:
+    """For each code of a batch, the batch codes with overlap >= m (itself included).
+
+    A detector holding all of a code's bits with threshold ``m`` fires
+    exactly when the overlap reaches ``m``, so a scratch store of that kind
+    finds every pair, exactly.
+    """
+    usable = np.flatnonzero(batch._weights >= m)
+    n = len(batch)
+    if usable.size == 0:
+        return BatchHits(np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64))
+    scratch = Store(batch.bits, threshold=m, segment=None, detectors=1, seed=0)
+    sub = Codes._wrap(np.ascontiguousarray(batch._words[usable]), batch.bits)
+    scratch.add(sub)
+    hits = scratch._query_batch(batch, m)
+    return BatchHits(hits.indptr, usable[hits.ids], hits.overlaps)
 
 
 def _restore_pickled(data: bytes) -> Store:

@@ -75,3 +75,28 @@ def noisy_copy(rng: np.random.Generator, code, bits: int, lose: int) -> list[int
 
 def hits_as_pairs(hits) -> list[tuple[int, int]]:
     return list(zip(hits.ids.tolist(), hits.overlaps.tolist()))
+
+
+def naive_find_or_add(stored: dict, batch, min_overlap: int, next_id: int):
+    """The find_or_add rule, one code at a time, with sets.
+
+    ``stored`` maps id -> set of bits (live codes only). Returns ``(ids,
+    is_new)`` and leaves ``stored`` holding the additions.
+    """
+    ids, is_new = [], []
+    for code in batch:
+        code = set(int(x) for x in code)
+        best = None
+        for i, other in stored.items():
+            ov = len(code & other)
+            if ov >= min_overlap and (best is None or (-ov, i) < (-best[1], best[0])):
+                best = (i, ov)
+        if best is None:
+            stored[next_id] = code
+            ids.append(next_id)
+            is_new.append(True)
+            next_id += 1
+        else:
+            ids.append(best[0])
+            is_new.append(False)
+    return ids, is_new

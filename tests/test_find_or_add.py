@@ -1,0 +1,123 @@
+"""Store.find_or_add against the naive one-at-a-time rule of tests/naive.py.
+
+The configurations include samples smaller than the codes (segment <
+weight), where the detectors alone cannot guarantee every match and the
+store must scan the codes they do not cover; removed codes, compaction and
+many postings blocks.
+"""
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+
+from sparseindex import Codes, ReadOnlyStoreError, Store
+from tests.naive import naive_find_or_add, noisy_copy, random_code
+
+
+class SmallBlockStore(Store):
+    _block_span = 7
+
+
+def live_codes(store):
+    ids = store.ids()
+    return {int(i): set(store.get([int(i)]).to_indices()[0].tolist()) for i in ids}
+
+
+def planted_batch(rng, stored, bits, weight, n, lose):
+    """Near-copies of stored codes and of each other, plus fresh codes."""
+    batch = []
+    for _ in range(n):
+        kind = rng.integers(3)
+        if kind == 0 and stored:
+            batch.append(noisy_copy(rng, sorted(stored[rng.choice(list(stored))]), bits, int(rng.integers(0, lose + 1))))
+        elif kind == 1 and batch:
+            batch.append(noisy_copy(rng, batch[int(rng.integers(len(batch)))], bits, int(rng.integers(0, lose + 1))))
+        else:
+            batch.append(random_code(rng, bits, weight))
+    return batch
+
+
+@pytest.mark.parametrize(
+    "cls, params, min_overlap",
+    [
+        (Store, dict(threshold=3, segment=None, detectors=1), 8),   # detectors cover every match
+        (Store, dict(threshold=3, segment=5, detectors=2), 8),      # 8 < 3 + 12 - 5: scan needed
+        (SmallBlockStore, dict(threshold=2, segment=6, detectors=3), 10),
+        (Store, dict(threshold=4, segment=10, detectors=1), 11),    # 11 >= 4 + 12 - 10: covered
+    ],
+)
+def test_matches_the_naive_rule(cls, params, min_overlap):
+    rng = np.random.default_rng(1)
+    bits, weight = 96, 12
+    store = cls(bits, seed=3, **params)
+    store.add([random_code(rng, bits, weight) for _ in range(150)])
+    store.remove(list(range(0, 150, 7)))
+    if cls is SmallBlockStore:
+        store.compact()
+    stored = live_codes(store)
+    for round_ in range(3):
+        batch = planted_batch(rng, stored, bits, weight, 60, lose=4)
+        want_ids, want_new = naive_find_or_add(stored, batch, min_overlap, store.next_id)
+        ids, is_new = store.find_or_add(batch, min_overlap=min_overlap)
+        assert ids.tolist() == want_ids and is_new.tolist() == want_new, round_
+        assert live_codes(store) == stored
+        store._check(deep=True)
+    assert sum(want_new) < len(batch)  # the planted copies really matched
+
+
+code = st.sets(st.integers(0, 39), min_size=3, max_size=12).map(sorted)
+
+
+@settings(max_examples=60)
+@given(
+    stored=st.lists(code, max_size=12),
+    batch=st.lists(code, min_size=1, max_size=12),
+    min_overlap=st.integers(1, 6),
+    segment=st.sampled_from([None, 3, 5]),
+    detectors=st.integers(1, 2),
+    seed=st.integers(0, 2**32),
+)
+def test_property_every_answer_is_the_naive_one(stored, batch, min_overlap, segment, detectors, seed):
+    store = SmallBlockStore(40, threshold=2 if segment != 3 else 2, segment=segment, detectors=detectors, seed=seed)
+    if stored:
+        store.add(stored)
+    reference = live_codes(store)
+    want_ids, want_new = naive_find_or_add(reference, batch, min_overlap, store.next_id)
+    ids, is_new = store.find_or_add(batch, min_overlap=min_overlap)
+    assert ids.tolist() == want_ids and is_new.tolist() == want_new
+    assert live_codes(store) == reference
+    for i, new, c in zip(ids.tolist(), is_new.tolist(), batch):  # exactness of every match
+        got = set(store.get([i]).to_indices()[0].tolist())
+        assert got == set(c) if new else len(got & set(c)) >= min_overlap
+
+
+def test_bad_batches_add_nothing(tmp_path):
+    store = Store(64, threshold=3, seed=1)
+    store.add([[1, 2, 3, 4]])
+    with pytest.raises(ValueError, match="row 1 has 2 set bits, fewer than threshold=3"):
+        store.find_or_add([[5, 6, 7], [8, 9]], min_overlap=2)
+    with pytest.raises(ValueError, match="row 0"):
+        store.find_or_add([[70, 1, 2]], min_overlap=2)
+    with pytest.raises(ValueError, match="min_overlap=0"):
+        store.find_or_add([[5, 6, 7]], min_overlap=0)
+    assert len(store) == 1 and store.next_id == 1
+    store.save(tmp_path / "s")
+    with pytest.raises(ReadOnlyStoreError, match="find_or_add"):
+        Store.load(tmp_path / "s", mmap=True).find_or_add([[1, 2, 3]], min_overlap=2)
+
+
+def test_large_batch_against_planted_copies():
+    """10,000 codes in, then 2,000 near-copies and 2,000 new: every copy found."""
+    bits, weight = 2048, 40
+    store = Store.for_target(bits, weight, false_hit=1e-6, capacity=100_000, noise=0.25, seed=4)
+    base = Codes.random(10_000, bits, weight, seed=4)
+    store.add(base)
+    rng = np.random.default_rng(5)
+    rows = base.to_indices()
+    copies = [noisy_copy(rng, rows[i], bits, 6) for i in rng.choice(10_000, 2_000, replace=False)]
+    fresh = Codes.random(2_000, bits, weight, seed=6).to_indices()
+    batch = copies + [list(r) for r in fresh]
+    ids, is_new = store.find_or_add(batch, min_overlap=30)
+    assert not is_new[:2_000].any() and is_new[2_000:].all()
+    assert np.array_equal(ids[2_000:], np.arange(10_000, 12_000))
