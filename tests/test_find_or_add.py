@@ -121,3 +121,20 @@ def test_large_batch_against_planted_copies():
     ids, is_new = store.find_or_add(batch, min_overlap=30)
     assert not is_new[:2_000].any() and is_new[2_000:].all()
     assert np.array_equal(ids[2_000:], np.arange(10_000, 12_000))
+
+
+def test_same_rule_as_dedupe_first():
+    """find_or_add on an empty store labels a batch exactly as dedupe(mode="first")."""
+    from sparseindex import dedupe
+    from sparseindex.dedupe import planted_duplicates
+
+    codes, _, _ = planted_duplicates(3_000, 512, 16, fraction=0.2, max_changed=4, seed=7)
+    labels = dedupe(codes, min_overlap=12, mode="first", method="index")
+    store = Store(512, threshold=3, segment=8, detectors=2, seed=8)
+    ids, is_new = store.find_or_add(codes, min_overlap=12)
+    reps = np.flatnonzero(labels == np.arange(len(labels)))
+    assert np.array_equal(np.flatnonzero(is_new), reps)
+    rep_id = np.full(len(labels), -1)
+    rep_id[reps] = np.arange(reps.size)
+    assert np.array_equal(ids, rep_id[labels])
+    assert reps.size < len(labels)
