@@ -82,14 +82,15 @@ def test_store_built_for_a_target_meets_the_model():
     with it within 3 sigma for false hits of random queries and for recall
     of noisy copies.
     """
-    from sparseindex import model
+    from sparseindex import CapacityWarning, model
 
     bits, active, noise = 256, 16, 0.25
     store = Store.for_target(bits, active, false_hit=0.5, capacity=300, noise=noise, recall=0.9, seed=23)
     chosen = store.plan
     assert chosen.recall >= 0.9 and chosen.false_hit_per_query <= 0.5
     codes = Codes.random(3000, bits, active, seed=24)
-    store.add(codes)
+    with pytest.warns(CapacityWarning):  # 3,000 codes is past this plan's capacity, on purpose
+        store.add(codes)
     queries = Codes.random(2000, bits, active, seed=25)
     p_code = model.false_hit_per_code(bits, active, chosen.segment, chosen.threshold, chosen.detectors)
     ok, msg = within_3_sigma(len(store.query_many(queries).ids), 3000 * 2000, p_code)
