@@ -37,6 +37,22 @@ def _check_int(name: str, value, minimum: int) -> int:
     return int(value)
 
 
+def _check_new_ids(ids, m: int) -> np.ndarray:
+    arr = np.asarray(ids)
+    if arr.ndim != 1 or arr.shape[0] != m:
+        raise ValueError(f"add: ids must be a 1-D sequence of {m} ids (one per code), got shape {arr.shape}")
+    if m and (arr.dtype == np.bool_ or arr.dtype.kind not in "iu"):
+        raise TypeError(f"add: ids must be integers, got {arr.tolist()[:3]!r}")
+    arr = arr.astype(np.int64)
+    if m and arr[0] < 0:
+        raise ValueError(f"add: ids[0]={int(arr[0])} is negative")
+    steps = np.flatnonzero(np.diff(arr) <= 0)
+    if steps.size:
+        k = int(steps[0]) + 1
+        raise ValueError(f"add: ids must ascend strictly: ids[{k}]={int(arr[k])} follows {int(arr[k - 1])}")
+    return arr
+
+
 def _check_fraction(value) -> float:
     if isinstance(value, bool) or not isinstance(value, (int, float, np.floating, np.integer)) or not 0 < value <= 1:
         raise ValueError(f"warn_fraction={value!r} must be a number in (0, 1]")
@@ -443,13 +459,19 @@ class Store:
         with self._writer:
             yield
 
-    def add(self, codes) -> np.ndarray:
+    def add(self, codes, *, ids=None) -> np.ndarray:
         """Store a batch of codes; return their new ids (int64).
 
         Accepts a :class:`~sparseindex.Codes`, a list/tuple of index
         sequences, a 2-D bool ndarray, a scipy.sparse matrix or a list of
         ``bitarray``. Every row is checked before anything is stored: one
         bad row and the batch adds nothing. O(batch set bits + D·s per code).
+
+        ``ids`` (optional) gives the new codes' ids yourself: strictly
+        ascending, from ``next_id`` up, gaps allowed (a store that holds one
+        shard of a larger id space). A code's detector samples depend only on
+        the seed and its id, so the same code with the same id is sampled
+        alike in any store of the same seed.
 
         Raises
         ------
@@ -468,9 +490,12 @@ class Store:
         ValueError: add: row 1 has 1 set bits, fewer than threshold=2: no detector could ever fire for it
         >>> len(s)
         2
+        >>> s.add([[8, 9]], ids=[10]).tolist(), s.next_id
+        ([10], 11)
         """
         batch = as_codes(codes, self._bits, what="add")
         m = len(batch)
+        given = None if ids is None else _check_new_ids(ids, m)
         if m == 0:
             return np.zeros(0, dtype=np.int64)
         weights = batch._weights
@@ -482,16 +507,24 @@ class Store:
                 "no detector could ever fire for it"
             )
         with self._mutating("add"):
-            ids = self._add(batch, weights, m)
+            if given is not None and given[0] < self._next_id:
+                raise ValueError(
+                    f"add: ids[0]={int(given[0])} is below next_id={self._next_id}: ids are never reused"
+                )
+            ids = self._add(batch, weights, m, given)
         self._after_change()
         return ids
 
-    def _add(self, batch: Codes, weights: np.ndarray, m: int) -> np.ndarray:
+    def _add(self, batch: Codes, weights: np.ndarray, m: int, given=None) -> np.ndarray:
         # Prepare everything where no query looks (new buffers, or the
         # unused capacity past ``_rows``), then commit under the write lock.
         ids = np.arange(self._next_id, self._next_id + m, dtype=np.int64)
         need = self._rows + m
         words, wts, removed, row_ids = self._words, self._weights, self._removed, self._row_ids
+        if given is not None and not np.array_equal(given, ids):
+            ids = given
+            if row_ids is None:  # ids and rows part ways here: start the row -> id table
+                row_ids = np.arange(max(words.shape[0], self._rows), dtype=np.int64)
         adopt = self._rows == 0
         if adopt:
             # a Codes batch never changes, so an empty store can take its
@@ -522,7 +555,7 @@ class Store:
             self._bank.commit_append(pending)
             self._words, self._weights, self._removed, self._row_ids = words, wts, removed, row_ids
             self._rows = need
-            self._next_id += m
+            self._next_id = int(ids[-1]) + 1
             if self._usage is not None:
                 self._usage += pending.usage
                 self._weight_hist += pending.weight_hist
@@ -604,6 +637,27 @@ class Store:
         if new_rows.size:
             self._after_change()
         return ids, is_new
+
+    def find_matches(self, codes, *, min_overlap) -> BatchHits:
+        """Every stored code whose full overlap with each query is at least ``min_overlap``.
+
+        Unlike :meth:`query_many` (which returns what the detectors find),
+        this is complete: rows the detectors are not sure to find (``weight
+        > min_overlap - threshold + min(segment, weight)``) are scanned as
+        well, and every match is verified. Ordered as :class:`Hits`.
+
+        Examples
+        --------
+        >>> s = Store(bits=64, threshold=2, segment=2, seed=0)
+        >>> _ = s.add([[1, 2, 3, 4, 5, 6]])
+        >>> s.find_matches([[1, 2, 3, 40]], min_overlap=3)[0].ids.tolist()
+        [0]
+        """
+        batch = as_codes(codes, self._bits, what="find_matches")
+        m = _check_int("min_overlap", min_overlap, 1)
+        result = self._matches_in_store(batch, m)
+        self._count(queries=len(batch), hits=result.ids.shape[0])
+        return result
 
     def _matches_in_store(self, batch: Codes, m: int) -> BatchHits:
         """Every stored code with overlap >= m with each batch code (complete and exact)."""

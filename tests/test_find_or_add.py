@@ -138,3 +138,43 @@ def test_same_rule_as_dedupe_first():
     rep_id[reps] = np.arange(reps.size)
     assert np.array_equal(ids, rep_id[labels])
     assert reps.size < len(labels)
+
+
+def test_find_matches_is_complete_where_detectors_are_not():
+    rng = np.random.default_rng(9)
+    store = SmallBlockStore(96, threshold=3, segment=4, detectors=1, seed=10)
+    codes = [random_code(rng, 96, 14) for _ in range(200)]
+    store.add(codes)
+    queries = [noisy_copy(rng, codes[i], 96, 5) for i in range(0, 200, 4)]
+    got = store.find_matches(queries, min_overlap=7)
+    for i, q in enumerate(queries):  # naive: every stored code, every overlap
+        want = sorted(((j, len(set(q) & set(c))) for j, c in enumerate(codes) if len(set(q) & set(c)) >= 7),
+                      key=lambda h: (-h[1], h[0]))
+        assert list(zip(got[i].ids.tolist(), got[i].overlaps.tolist())) == want
+    detected = store.query_many(queries, min_overlap=7)
+    assert detected.ids.shape[0] < got.ids.shape[0]  # the detectors alone miss some here
+
+
+def test_add_with_given_ids_samples_as_the_id_says(tmp_path):
+    rng = np.random.default_rng(11)
+    codes = [random_code(rng, 128, 10) for _ in range(30)]
+    whole = Store(128, threshold=3, segment=5, detectors=2, seed=12)
+    whole.add(codes)
+    shard = Store(128, threshold=3, segment=5, detectors=2, seed=12)
+    mine = list(range(1, 30, 3))
+    assert shard.add([codes[i] for i in mine], ids=mine).tolist() == mine
+    assert shard.next_id == 29 and shard.ids().tolist() == mine
+    for i in mine:
+        assert np.array_equal(shard.detector_bits(i), whole.detector_bits(i))
+    q = codes[4]
+    assert shard.query(q).ids.tolist() == [i for i in whole.query(q).ids.tolist() if i in mine]
+    shard._check(deep=True)
+    shard.save(tmp_path / "shard")
+    assert Store.load(tmp_path / "shard").ids().tolist() == mine
+    with pytest.raises(ValueError, match="ids\\[0\\]=5 is below next_id=29"):
+        shard.add([codes[0]], ids=[5])
+    with pytest.raises(ValueError, match="ids\\[1\\]=40 follows 41"):
+        shard.add([codes[0], codes[1]], ids=[41, 40])
+    with pytest.raises(ValueError, match="1-D sequence of 2 ids"):
+        shard.add([codes[0], codes[1]], ids=[50])
+    assert len(shard) == len(mine)
