@@ -15,14 +15,34 @@ Examples
 
 from . import model
 from .codes import Codes
-from .dedupe import DedupeSummary, dedupe
 from .errors import CapacityWarning, FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
 from .model import PlanError
 from .planner import Plan, plan
-from .health import Health, ProbeResult
 from .store import BatchHits, Hits, Store
 
 __version__ = "0.1.0"
+
+#: Names imported on first use (PEP 562), so ``import sparseindex`` stays quick.
+_LAZY = {
+    "dedupe": ".dedupe",
+    "DedupeSummary": ".dedupe",
+    "Health": ".health",
+    "ProbeResult": ".health",
+}
+
+
+def __getattr__(name):
+    if name in _LAZY:
+        import importlib
+
+        value = getattr(importlib.import_module(_LAZY[name], __name__), name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module 'sparseindex' has no attribute {name!r}")
+
+
+def __dir__():
+    return sorted(set(globals()) | set(_LAZY))
 
 __all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model",
     "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "CapacityWarning",

@@ -57,9 +57,37 @@ if DISABLE_JIT:
         state = (int(state) + _GOLDEN) & _MASK64
         return np.uint64(state), _mix64(state)
 
+    def prefetch(array, index):
+        """A cache hint: nothing to do in plain Python."""
+
 else:
+    from llvmlite import ir
     from numba import types
+    from numba.core import cgutils
     from numba.extending import intrinsic
+
+    @intrinsic
+    def prefetch(typingctx, array, index):
+        """Hint the CPU to fetch ``array[index]`` into cache (LLVM ``prefetch``, read, high locality).
+
+        Used where the next place a kernel reads is known but far away (the
+        next block's postings runs), so the fetch overlaps current work. A
+        hint never faults, even for an address past the array.
+        """
+        sig = types.void(array, index)
+
+        def codegen(context, builder, signature, args):
+            aryty = signature.args[0]
+            ary = context.make_array(aryty)(context, builder, args[0])
+            ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]], wraparound=False)
+            i8p = ir.IntType(8).as_pointer()
+            i32 = ir.IntType(32)
+            fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
+            fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0i8")
+            builder.call(fn, [builder.bitcast(ptr, i8p), ir.Constant(i32, 0), ir.Constant(i32, 3), ir.Constant(i32, 1)])
+            return context.get_dummy_value()
+
+        return sig, codegen
 
     @intrinsic
     def _ctpop_u64(typingctx, x):
@@ -361,20 +389,25 @@ def merge_blocks(post, block_indptr, block_lo, first_block, last_block, out_offs
 
 
 @inline_kernel
-def _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired):
-    """Count each detector's sampled bits present in the query, block by block.
+def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters, threshold, fired, base, room):
+    """Count each detector's sampled bits present in the query, blocks k0..k1-1.
 
     A block's counters (at most ``block_span`` of them) stay in cache while
-    its postings stream past. A detector is recorded the moment its counter
-    reaches ``threshold``, so it appears once. At most ``fired.shape[0]``
-    are recorded; the true count is returned so that the caller can retry
-    with room for all. ``counters`` are zero again on exit.
+    its postings stream past; the first postings of the next block's runs
+    are prefetched meanwhile (each run starts far from the last). A
+    detector is recorded the moment its counter reaches ``threshold``, so it
+    appears once. At most ``room`` are recorded, at ``fired[base:]``; the
+    true count is returned so that the caller can retry with room for all.
+    ``counters`` are zero again on exit.
     """
     n_fired = 0
-    room = fired.shape[0]
-    for k in range(block_indptr.shape[0]):
+    n_q = q_bits.shape[0]
+    for k in range(k0, k1):
         lo = block_lo[k]
-        for t in range(q_bits.shape[0]):
+        if k + 1 < k1:
+            for t in range(n_q):
+                prefetch(post, block_indptr[k + 1, q_bits[t]])
+        for t in range(n_q):
             b = q_bits[t]
             for p in range(block_indptr[k, b], block_indptr[k, b + 1]):
                 d = post[p]
@@ -382,10 +415,19 @@ def _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, thresh
                 counters[d] = c
                 if c == threshold:
                     if n_fired < room:
-                        fired[n_fired] = lo + d
+                        fired[base + n_fired] = lo + d
                     n_fired += 1
         counters[: block_hi[k] - lo] = 0
     return n_fired
+
+
+@inline_kernel
+def _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired):
+    """:func:`_scan_range` over every block into ``fired``."""
+    return _scan_range(
+        q_bits, post, block_indptr, block_lo, block_hi, 0, block_indptr.shape[0], counters, threshold, fired, 0,
+        fired.shape[0],
+    )
 
 
 @inline_kernel
@@ -435,6 +477,55 @@ def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters,
         q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap, fired
     )
     return rows, overlaps
+
+
+@parallel_kernel
+def scan_blocks_parallel(q_bits, post, block_indptr, block_lo, block_hi, counter_like, threshold, chunk_lo, chunk_hi,
+                         fired, room):
+    """One query's scan with the blocks split into chunks run in parallel.
+
+    Chunk ``c`` scans blocks ``chunk_lo[c]..chunk_hi[c]-1`` with its own
+    counters and records at most ``room`` fired detectors at ``fired[c *
+    room:]``. Returns each chunk's true count (retry with more room if one
+    exceeds it).
+    """
+    n_chunks = chunk_lo.shape[0]
+    counts = np.zeros(n_chunks, dtype=np.int64)
+    for c in prange(n_chunks):
+        counters = np.zeros(counter_like.shape[0], dtype=counter_like.dtype)
+        counts[c] = _scan_range(
+            q_bits, post, block_indptr, block_lo, block_hi, chunk_lo[c], chunk_hi[c], counters, threshold, fired,
+            c * room, room,
+        )
+    return counts
+
+
+@kernel
+def answer_from_fired(fired, counts, room, detectors, removed, words, q_words, min_overlap):
+    """Rows (ascending) and overlaps of a scan recorded by ``scan_blocks_parallel``."""
+    total = 0
+    for c in range(counts.shape[0]):
+        total += counts[c]
+    gathered = np.empty(total, dtype=np.int64)
+    n = 0
+    for c in range(counts.shape[0]):
+        for i in range(counts[c]):
+            gathered[n] = fired[c * room + i]
+            n += 1
+    rows = _fired_rows(gathered, n, detectors)
+    out_rows = np.empty(rows.shape[0], dtype=np.int64)
+    out_ov = np.empty(rows.shape[0], dtype=np.int64)
+    m = 0
+    for i in range(rows.shape[0]):
+        r = rows[i]
+        if removed[r]:
+            continue
+        ov = _row_overlap(words[r], q_words)
+        if ov >= min_overlap:
+            out_rows[m] = r
+            out_ov[m] = ov
+            m += 1
+    return out_rows[:m], out_ov[:m]
 
 
 @parallel_kernel

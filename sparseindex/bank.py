@@ -33,6 +33,9 @@ MAX_DETECTORS_TOTAL = 2**31 - 1
 #: block's counters (64 KiB of uint8) stay in the second-level cache.
 BLOCK_SPAN = 2**16
 
+#: A single query splits its blocks among threads from this many blocks up.
+PARALLEL_MIN_BLOCKS = 2
+
 #: Codes sampled per kernel call in ``append`` (bounds the temporaries).
 APPEND_CHUNK_ROWS = 2**18
 
@@ -272,8 +275,18 @@ class DetectorBank:
         """Rows hit by one query, with their exact overlaps (kernel ``query_one``).
 
         ``counters`` comes from :meth:`new_counters` and is returned zeroed.
-        O(postings of the query's bits + hits * words per code).
+        O(postings of the query's bits + hits * words per code). With more
+        than one block and more than one thread, the blocks are split among
+        the threads (kernel ``scan_blocks_parallel``) — unless another
+        thread is in a parallel kernel already, in which case this one scans
+        serially rather than wait.
         """
+        threads = thread_count()
+        if threads > 1 and self.block_count >= PARALLEL_MIN_BLOCKS and PARALLEL_LOCK.acquire(blocking=False):
+            try:
+                return self._scan_one_parallel(q_bits, q_words, words, removed, min_overlap, counters, threads)
+            finally:
+                PARALLEL_LOCK.release()
         return _kernels.query_one(
             q_bits,
             q_words,
@@ -288,6 +301,22 @@ class DetectorBank:
             words,
             min_overlap,
         )
+
+    def _scan_one_parallel(self, q_bits, q_words, words, removed, min_overlap, counters, threads):
+        chunks = min(self.block_count, threads)
+        edges = np.linspace(0, self.block_count, chunks + 1).astype(np.int64)
+        chunk_lo, chunk_hi = edges[:-1].copy(), edges[1:].copy()
+        room = 1024
+        while True:
+            fired = np.empty(room * chunks, dtype=np.int64)
+            counts = _kernels.scan_blocks_parallel(
+                q_bits, self._post, self._block_indptr, self._block_lo, self._block_hi, counters, self.threshold,
+                chunk_lo, chunk_hi, fired, room,
+            )
+            if counts.max() <= room:
+                return _kernels.answer_from_fired(fired, counts, room, self.detectors, removed, words, q_words,
+                                                  min_overlap)
+            room = int(counts.max())
 
     def scan_many(self, q_indptr, q_bits, q_words, words, removed, min_overlap):
         """Rows hit by each of many queries, in parallel (kernel ``query_batch``).
