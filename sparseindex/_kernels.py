@@ -281,41 +281,36 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
     return det_indptr, det_bits
 
 
-@kernel
-def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed, bits, block_span, offset, usage,
-                            weight_hist, count_usage=True):
-    """Sample and index the detectors of packed rows in one pass, no temporaries.
+@inline_kernel
+def _build_chunk(words, code_ids, r0, r1, first_row, detectors, segment, seed, bits, block_span, post, post_base,
+                 block_indptr, block_lo, block_hi, block_base, usage, weight_hist, count_usage):
+    """Sample and index rows r0..r1-1 of ``words`` into preallocated tables.
 
     Block boundaries fall on multiples of ``block_span`` in the global
     detector id space, so a block never spans more than ``block_span``
     detectors and its postings fit ``uint16`` offsets from its first
     detector. The samples are those of ``sample_detectors`` (the bank's
     ``_check`` compares them), but the packed rows are read twice (count,
-    then fill) instead of materialising every sample, so fresh memory is
-    touched once, not four times. Row ``i`` of ``words`` becomes store
-    row ``first_row + i``. Returns ``(block_indptr, block_lo, block_hi,
-    post, max_sample)``. On the way (``count_usage``) it adds every row's set
-    bits to ``usage`` (per-bit counts) and its weight to ``weight_hist``,
-    nearly for free since the row's bits are in hand (the benchmark turns it
-    off to measure that).
+    then fill) instead of materialising every sample. Row ``r`` becomes
+    store row ``first_row + r``; its postings go to ``post[post_base:]`` and
+    its blocks to rows ``block_base..`` of the block tables, whose offsets
+    are absolute positions in ``post``. On the way (``count_usage``) each
+    row's set bits are added to ``usage`` and its weight to ``weight_hist``.
+    Returns the largest sample.
     """
-    rows = words.shape[0]
-    first_detector = first_row * detectors
-    n_det = rows * detectors
+    first_detector = (first_row + r0) * detectors
+    n_det = (r1 - r0) * detectors
     last = first_detector + n_det
     first_block = first_detector // block_span
     n_blocks = 0 if n_det == 0 else (last - 1) // block_span - first_block + 1
-    block_lo = np.empty(n_blocks, dtype=np.int64)
-    block_hi = np.empty(n_blocks, dtype=np.int64)
     for k in range(n_blocks):
-        block_lo[k] = max(first_detector, (first_block + k) * block_span)
-        block_hi[k] = min(last, (first_block + k + 1) * block_span)
+        block_lo[block_base + k] = max(first_detector, (first_block + k) * block_span)
+        block_hi[block_base + k] = min(last, (first_block + k + 1) * block_span)
     counts = np.zeros((n_blocks, bits), dtype=np.int64)
     row_bits = np.empty(bits, dtype=np.int64)
     sample = np.empty(bits, dtype=np.int64)
     max_sample = 0
-    total = 0
-    for r in range(rows):
+    for r in range(r0, r1):
         w = _row_bits(words, r, row_bits)
         if count_usage:
             for t in range(w):
@@ -325,35 +320,55 @@ def build_blocks_from_words(words, code_ids, first_row, detectors, segment, seed
         if take > max_sample:
             max_sample = take
         for j in range(detectors):
-            d = first_detector + r * detectors + j
+            d = (first_row + r) * detectors + j
             k = d // block_span - first_block
             _sample_into(row_bits, w, take, seed, code_ids[r], j, sample)
             for t in range(take):
                 counts[k, sample[t]] += 1
-            total += take
-    block_indptr = np.zeros((n_blocks, bits + 1), dtype=np.int64)
     cursor = np.empty((n_blocks, bits), dtype=np.int64)
-    pos = 0
+    pos = post_base
     for k in range(n_blocks):
         for b in range(bits):
-            block_indptr[k, b] = pos + offset
+            block_indptr[block_base + k, b] = pos
             cursor[k, b] = pos
             pos += counts[k, b]
-        block_indptr[k, bits] = pos + offset
-    post = np.empty(total, dtype=np.uint16)
-    for r in range(rows):
+        block_indptr[block_base + k, bits] = pos
+    for r in range(r0, r1):
         w = _row_bits(words, r, row_bits)
         take = w if (segment <= 0 or segment >= w) else segment
         for j in range(detectors):
-            d = first_detector + r * detectors + j
+            d = (first_row + r) * detectors + j
             k = d // block_span - first_block
-            o = np.uint16(d - block_lo[k])
+            o = np.uint16(d - block_lo[block_base + k])
             _sample_into(row_bits, w, take, seed, code_ids[r], j, sample)
             for t in range(take):
                 b = sample[t]
                 post[cursor[k, b]] = o
                 cursor[k, b] += 1
-    return block_indptr, block_lo, block_hi, post, max_sample
+    return max_sample
+
+
+@parallel_kernel
+def build_blocks_parallel(words, code_ids, first_row, detectors, segment, seed, bits, block_span, chunk_rows,
+                          post, post_starts, block_indptr, block_lo, block_hi, block_starts, usage, weight_hist,
+                          count_usage):
+    """:func:`_build_chunk` over chunks of rows in parallel, into shared tables.
+
+    Chunk ``c`` holds rows ``chunk_rows[c]..chunk_rows[c+1]-1`` and writes
+    its postings from ``post_starts[c]`` and its blocks from
+    ``block_starts[c]`` (the caller sized both from the rows' weights), and
+    its bit usage into row ``c`` of ``usage`` / ``weight_hist``. Returns the
+    largest sample of each chunk.
+    """
+    n_chunks = chunk_rows.shape[0] - 1
+    biggest = np.zeros(n_chunks, dtype=np.int64)
+    for c in prange(n_chunks):
+        biggest[c] = _build_chunk(
+            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, segment, seed, bits,
+            block_span, post, post_starts[c], block_indptr, block_lo, block_hi, block_starts[c], usage[c],
+            weight_hist[c], count_usage,
+        )
+    return biggest
 
 
 @kernel

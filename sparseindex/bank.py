@@ -103,11 +103,13 @@ class DetectorBank:
     def prepare_append(self, words: np.ndarray, code_ids: np.ndarray, count_usage: bool = True) -> "PendingAppend":
         """Everything an append computes, without changing what readers see.
 
-        Wraps kernel ``build_blocks_from_words``, in chunks of
-        ``APPEND_CHUNK_ROWS`` rows, and writes the new postings past the
-        used part of the buffer (or into a larger copy of it), where no
-        query looks. An error (MemoryError included) leaves the bank as it
-        was. Only one thread may prepare or commit at a time.
+        The new postings are sized from the rows' weights first, so the
+        (grown) postings buffer is allocated once and kernel
+        ``build_blocks_parallel`` writes straight into it — past the used
+        part, where no query looks — in chunks of ``APPEND_CHUNK_ROWS`` rows
+        run in parallel. Peak memory is the new buffer plus small block
+        tables. An error (MemoryError included) leaves the bank as it was.
+        Only one thread may prepare or commit at a time.
         """
         rows = words.shape[0]
         if (self.rows + rows) * self.detectors > MAX_DETECTORS_TOTAL:
@@ -115,33 +117,20 @@ class DetectorBank:
                 f"a store holds at most {MAX_DETECTORS_TOTAL // self.detectors:,} codes with "
                 f"detectors={self.detectors}; adding {rows:,} to {self.rows:,} exceeds it"
             )
-        pieces = []
-        offset = self._used
-        max_sample = self._max_sample
         segment = -1 if self.segment is None else self.segment
         code_ids = np.asarray(code_ids, dtype=np.int64)
-        usage = np.zeros(self.bits, dtype=np.int64)
-        weight_hist = np.zeros(self.bits + 1, dtype=np.int64)
-        for r0 in range(0, rows, APPEND_CHUNK_ROWS):
-            r1 = min(rows, r0 + APPEND_CHUNK_ROWS)
-            *piece, chunk_max = _kernels.build_blocks_from_words(
-                words[r0:r1],
-                code_ids[r0:r1],
-                self.rows + r0,
-                self.detectors,
-                segment,
-                np.uint64(self.seed),
-                self.bits,
-                self.block_span,
-                offset,
-                usage,
-                weight_hist,
-                count_usage,
-            )
-            offset += piece[3].shape[0]
-            pieces.append(piece)
-            max_sample = max(max_sample, int(chunk_max))
-        need = offset
+        weights = _kernels.row_weights(words)
+        take = weights if segment < 0 else np.minimum(weights, segment)
+        chunk_rows = np.arange(0, rows + APPEND_CHUNK_ROWS, APPEND_CHUNK_ROWS, dtype=np.int64)
+        chunk_rows[-1] = rows
+        chunk_rows = np.unique(chunk_rows)
+        per_chunk = np.add.reduceat(take, chunk_rows[:-1]) * self.detectors if rows else np.zeros(0, np.int64)
+        post_starts = self._used + np.concatenate([[0], np.cumsum(per_chunk)[:-1]]).astype(np.int64)
+        first_det = (self.rows + chunk_rows[:-1]) * self.detectors
+        last_det = (self.rows + chunk_rows[1:]) * self.detectors
+        n_blocks = (last_det - 1) // self.block_span - first_det // self.block_span + 1
+        block_starts = np.concatenate([[0], np.cumsum(n_blocks)[:-1]]).astype(np.int64)
+        need = self._used + int(per_chunk.sum())
         buffer = self._post
         if need > buffer.shape[0]:
             # exact size for the first batch (a store built in one add wastes
@@ -149,15 +138,26 @@ class DetectorBank:
             capacity = need if self._used == 0 else max(need, int(buffer.shape[0] * 1.5))
             buffer = np.empty(capacity, dtype=np.uint16)
             buffer[: self._used] = self._post[: self._used]
-        block_indptr = np.concatenate([self._block_indptr] + [p[0] for p in pieces])
-        block_lo = np.concatenate([self._block_lo] + [p[1] for p in pieces])
-        block_hi = np.concatenate([self._block_hi] + [p[2] for p in pieces])
-        pos = self._used
-        for p in pieces:
-            buffer[pos : pos + p[3].shape[0]] = p[3]
-            pos += p[3].shape[0]
-        return PendingAppend(self.rows, rows, buffer, block_indptr, block_lo, block_hi, need, max_sample, usage,
-                             weight_hist)
+        total_blocks = int(n_blocks.sum())
+        new_indptr = np.empty((total_blocks, self.bits + 1), dtype=np.int64)
+        new_lo = np.empty(total_blocks, dtype=np.int64)
+        new_hi = np.empty(total_blocks, dtype=np.int64)
+        usage = np.zeros((chunk_rows.shape[0] - 1, self.bits), dtype=np.int64)
+        weight_hist = np.zeros((chunk_rows.shape[0] - 1, self.bits + 1), dtype=np.int64)
+        max_sample = self._max_sample
+        if rows:
+            with PARALLEL_LOCK:
+                biggest = _kernels.build_blocks_parallel(
+                    words, code_ids, self.rows, self.detectors, segment, np.uint64(self.seed), self.bits,
+                    self.block_span, chunk_rows, buffer, post_starts, new_indptr, new_lo, new_hi, block_starts,
+                    usage, weight_hist, count_usage,
+                )
+            max_sample = max(max_sample, int(biggest.max()))
+        block_indptr = np.concatenate([self._block_indptr, new_indptr])
+        block_lo = np.concatenate([self._block_lo, new_lo])
+        block_hi = np.concatenate([self._block_hi, new_hi])
+        return PendingAppend(self.rows, rows, buffer, block_indptr, block_lo, block_hi, need, max_sample,
+                             usage.sum(axis=0), weight_hist.sum(axis=0))
 
     def commit_append(self, pending: "PendingAppend") -> None:
         """Make a prepared append visible (hold the store's write lock).
