@@ -33,7 +33,10 @@ import math
 import os
 import resource
 import statistics
+import subprocess
 import sys
+import tempfile
+import textwrap
 import time
 
 import numpy as np
@@ -100,6 +103,37 @@ def _peer(codes, queries, threshold):
         np.flatnonzero(matrix @ dense >= threshold)
         times.append(time.perf_counter() - t0)
     return statistics.median(times)
+
+
+STARTUP = textwrap.dedent(
+    """
+    import json, time
+    t0 = time.perf_counter()
+    import sparseindex
+    t1 = time.perf_counter()
+    store = sparseindex.Store(2048, threshold=20, seed=1)
+    store.add(sparseindex.Codes.random(1000, 2048, 40, seed=1))
+    hits = store.query(list(range(0, 2040, 51)))
+    t2 = time.perf_counter()
+    print(json.dumps({"import_s": t1 - t0, "first_query_s": t2 - t1}))
+    """
+)
+
+
+def startup(cold: bool) -> dict:
+    """Import time and time to a first answered query in a new process.
+
+    ``cold``: numba's cache points at an empty folder, so every kernel used
+    compiles; otherwise the cache the project normally uses (warm after the
+    runs above).
+    """
+    env = dict(os.environ)
+    env["PYTHONPATH"] = ROOT + os.pathsep + env.get("PYTHONPATH", "")
+    with tempfile.TemporaryDirectory() as empty:
+        if cold:
+            env["NUMBA_CACHE_DIR"] = empty
+        out = subprocess.run([sys.executable, "-c", STARTUP], env=env, capture_output=True, text=True, check=True)
+    return json.loads(out.stdout.strip().splitlines()[-1])
 
 
 def run(args):
@@ -236,7 +270,19 @@ process; the machine is shared, so the ratios matter more than the times.
 """
 
 
-def write_docs(rows, bandwidth, threads, record, fitted):
+def startup_text(starts) -> str:
+    warm = starts["warm"]
+    cold = starts["cold"][0]
+    imp = statistics.median(x["import_s"] for x in warm)
+    first = statistics.median(x["first_query_s"] for x in warm)
+    return (
+        f"New process: `import sparseindex` {imp:.2f} s (target 0.3 s); first add + query with the "
+        f"compilation cache warm {first:.2f} s after the import (target 1 s; median of {len(warm)}); "
+        f"with an empty cache (every kernel those calls use compiles) {cold['first_query_s']:.1f} s."
+    )
+
+
+def write_docs(rows, bandwidth, threads, record, fitted, starts):
     png = plot(rows, os.path.join(ROOT, "docs", "query_scaling.png"))
     lines = [DOC_HEAD, "## Machine", "", common.machine_markdown(record, bandwidth), "", "## Results", "",
              table(rows, threads), ""]
@@ -245,6 +291,7 @@ def write_docs(rows, bandwidth, threads, record, fitted):
     lines.append("")
     if png:
         lines += ["![query time against N, log-log](query_scaling.png)", ""]
+    lines += ["## Start-up", "", startup_text(starts), ""]
     largest = max(r["n"] for r in rows)
     big = [r for r in rows if r["n"] == largest]
     for r in big:
@@ -261,6 +308,7 @@ def write_docs(rows, bandwidth, threads, record, fitted):
 def main(argv=None):
     args = parse_args(sys.argv[1:] if argv is None else argv)
     rows, bandwidth, threads = run(args)
+    starts = {"warm": [startup(False) for _ in range(3)], "cold": [startup(True)]}
     record = common.machine_record()
     fitted = slopes(rows)
     print(common.machine_markdown(record, bandwidth))
@@ -268,12 +316,14 @@ def main(argv=None):
     print(table(rows, threads))
     print()
     print("slopes (N >= 1e5):", {s: round(v, 3) for s, v in fitted.items()})
+    print(startup_text(starts))
     if args.update_docs:
-        write_docs(rows, bandwidth, threads, record, fitted)
+        write_docs(rows, bandwidth, threads, record, fitted, starts)
         print("wrote docs/performance.md")
     if args.json:
         with open(args.json, "w") as f:
-            json.dump({"machine": record, "bandwidth": bandwidth, "rows": rows, "slopes": fitted}, f, indent=1)
+            json.dump({"machine": record, "bandwidth": bandwidth, "rows": rows, "slopes": fitted, "startup": starts},
+                      f, indent=1)
     return 0
 
 
