@@ -18,6 +18,7 @@ COMMANDS = {
     "plan": "._cli_plan",
     "health": "._cli_health",
     "dedupe": "._cli_dedupe",
+    "demo": "._cli_demo",
 }
 
 
