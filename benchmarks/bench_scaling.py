@@ -266,6 +266,11 @@ process; the machine is shared, so the ratios matter more than the times.
   thresholding afterwards (no compare in the loop) was 15% slower.
 * Not done yet: a bit-major layout inside groups of blocks, which would
   turn a query's runs into q long ones (8× fewer starts).
+* Parallel kernels need the cores to themselves: when another process keeps
+  a core busy, a parallel call can wait a scheduler time slice (several
+  ms) for its second thread; a row whose batch speed-up is about 1× was
+  measured in such a moment. `SPARSEINDEX_PARALLEL_QUERY=0` keeps single
+  queries on one thread; `NUMBA_NUM_THREADS` bounds the batch threads.
 
 """
 

@@ -36,6 +36,12 @@ NOGIL: bool = True
 FASTMATH: bool = False  # integer kernels; nothing to gain, exactness to lose
 BOUNDSCHECK: bool = False  # public wrappers validate; kernels trust them
 
+#: Set ``SPARSEINDEX_PARALLEL_QUERY=0`` to scan single queries on one thread.
+#: Splitting one query between threads halves its time on an otherwise idle
+#: machine, but when other processes keep the cores busy each parallel call
+#: can wait a scheduler time slice (milliseconds) for its second thread.
+PARALLEL_SINGLE_QUERY: bool = os.environ.get("SPARSEINDEX_PARALLEL_QUERY", "1") != "0"
+
 #: Serialises entry into ``parallel=True`` kernels (see module docstring).
 PARALLEL_LOCK = threading.RLock()
 

@@ -24,7 +24,7 @@ from __future__ import annotations
 import numpy as np
 
 from . import _kernels
-from ._config import PARALLEL_LOCK, thread_count
+from ._config import PARALLEL_LOCK, PARALLEL_SINGLE_QUERY, thread_count
 
 #: Detector ids are int32 in results and int64 in kernels; keep them int32-sized.
 MAX_DETECTORS_TOTAL = 2**31 - 1
@@ -282,7 +282,12 @@ class DetectorBank:
         serially rather than wait.
         """
         threads = thread_count()
-        if threads > 1 and self.block_count >= PARALLEL_MIN_BLOCKS and PARALLEL_LOCK.acquire(blocking=False):
+        if (
+            PARALLEL_SINGLE_QUERY
+            and threads > 1
+            and self.block_count >= PARALLEL_MIN_BLOCKS
+            and PARALLEL_LOCK.acquire(blocking=False)
+        ):
             try:
                 return self._scan_one_parallel(q_bits, q_words, words, removed, min_overlap, counters, threads)
             finally:
