@@ -408,8 +408,9 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
     """Count each detector's sampled bits present in the query, blocks k0..k1-1.
 
     A block's counters (at most ``block_span`` of them) stay in cache while
-    its postings stream past; the first postings of the next block's runs
-    are prefetched meanwhile (each run starts far from the last). A
+    its postings stream past; while a bit's run is counted, the same bit's
+    run in the next block is prefetched (runs are short and start far apart,
+    so the hardware prefetcher alone leaves the reads latency-bound). A
     detector is recorded the moment its counter reaches ``threshold``, so it
     appears once. At most ``room`` are recorded, at ``fired[base:]``; the
     true count is returned so that the caller can retry with room for all.
@@ -419,11 +420,11 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
     n_q = q_bits.shape[0]
     for k in range(k0, k1):
         lo = block_lo[k]
-        if k + 1 < k1:
-            for t in range(n_q):
-                prefetch(post, block_indptr[k + 1, q_bits[t]])
         for t in range(n_q):
             b = q_bits[t]
+            if k + 1 < k1:  # the same bit's run in the next block, one hint per cache line
+                for x in range(block_indptr[k + 1, b], block_indptr[k + 1, b + 1], 32):
+                    prefetch(post, x)
             for p in range(block_indptr[k, b], block_indptr[k, b + 1]):
                 d = post[p]
                 c = counters[d] + 1
