@@ -35,11 +35,30 @@ __all__ = ["add_parser", "run", "load_codes", "InputError"]
 
 
 class InputError(ValueError):
-    """A file that cannot be read as codes; the message names the file and the fault."""
+    """A file that cannot be read as codes; the message names the file and the fault.
+
+    Examples
+    --------
+    >>> load_codes("missing.npy")
+    Traceback (most recent call last):
+    ...
+    sparseindex._cli_dedupe.InputError: missing.npy: no such file
+    >>> issubclass(InputError, ValueError)
+    True
+    """
 
 
 def add_parser(subparsers):
-    """Register ``dedupe`` on an argparse sub-parser collection; return it."""
+    """Register ``dedupe`` on an argparse sub-parser collection; return it.
+
+    Examples
+    --------
+    >>> import argparse
+    >>> sub = argparse.ArgumentParser(prog="sparseindex").add_subparsers()
+    >>> args = add_parser(sub).parse_args(["codes.npy", "--min-overlap", "32"])
+    >>> args.input, args.min_overlap, args.mode, args.method, args.progress
+    ('codes.npy', 32, 'first', 'auto', None)
+    """
     p = subparsers.add_parser(
         "dedupe",
         help="label near-duplicate codes in a .npy or .npz file",
@@ -101,7 +120,21 @@ def _index_matrix(path, arr, bits) -> Codes:
 
 
 def load_codes(path, bits=None) -> Codes:
-    """Read a file of codes (see the module docs); InputError naming the file on any fault."""
+    """Read a file of codes (see the module docs); InputError naming the file on any fault.
+
+    Examples
+    --------
+    >>> import os, tempfile
+    >>> path = os.path.join(tempfile.mkdtemp(), "codes.npy")
+    >>> np.save(path, np.array([[1, 2, 3, -1], [1, 2, 3, 4], [7, 8, 9, 10]]))   # -1 pads a short row
+    >>> codes = load_codes(path)
+    >>> len(codes), codes.bits, codes.weights.tolist()
+    (3, 11, [3, 4, 4])
+    >>> load_codes(path, bits=8)
+    Traceback (most recent call last):
+    ...
+    sparseindex._cli_dedupe.InputError: ...codes.npy: row 2: bit index 8 is out of range for bits=8 (valid 0..7)
+    """
     if not os.path.exists(path):
         raise InputError(f"{path}: no such file")
     if os.path.isdir(path):
@@ -178,7 +211,23 @@ def _save_labels(out, labels):
 
 
 def run(args):
-    """Carry out ``sparseindex dedupe``; return the exit status."""
+    """Carry out ``sparseindex dedupe``; return the exit status.
+
+    Examples
+    --------
+    >>> import argparse, contextlib, io, os, tempfile
+    >>> path = os.path.join(tempfile.mkdtemp(), "codes.npy")
+    >>> np.save(path, np.array([[1, 2, 3, 5], [1, 2, 3, 4], [7, 8, 9, 10]]))
+    >>> args = argparse.Namespace(input=path, min_overlap=3, mode="first", method="auto", recall=0.99, seed=None,
+    ...                           bits=None, out=path[:-4] + ".labels.npy", json=False, progress=False)
+    >>> out = io.StringIO()
+    >>> with contextlib.redirect_stdout(out):
+    ...     status = run(args)
+    >>> status, np.load(args.out).tolist()
+    (0, [0, 0, 2])
+    >>> run(argparse.Namespace(**{**vars(args), "input": path + ".missing"}))
+    2
+    """
     show = args.progress if args.progress is not None else sys.stderr.isatty()
     bar = TqdmProgress(delay=0.0 if args.progress else 0.5) if show else None
     try:

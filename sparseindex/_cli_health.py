@@ -20,7 +20,16 @@ __all__ = ["add_parser", "run", "plot_headroom"]
 
 
 def add_parser(subparsers):
-    """Register ``health`` on an argparse sub-parser collection; return it."""
+    """Register ``health`` on an argparse sub-parser collection; return it.
+
+    Examples
+    --------
+    >>> import argparse
+    >>> sub = argparse.ArgumentParser(prog="sparseindex").add_subparsers()
+    >>> args = add_parser(sub).parse_args(["fleet.sidx", "--probe", "1,000"])
+    >>> args.path, args.probe, args.source, args.json, args.plot
+    ('fleet.sidx', 1000, 'uniform', False, None)
+    """
     p = subparsers.add_parser(
         "health",
         help="report the fill level and false-hit headroom of a saved store",
@@ -55,6 +64,30 @@ def _fail(message: str) -> int:
 
 
 def run(args) -> int:
+    """Carry out ``sparseindex health``; return the exit status.
+
+    Opens ``args.path`` memory-mapped and read-only, probes it if asked,
+    prints the report (text, JSON or OpenMetrics) and draws the plot if
+    asked; a missing or bad file or a bad option prints one line on stderr
+    and returns 2.
+
+    Examples
+    --------
+    >>> import argparse, contextlib, io, os, tempfile
+    >>> from sparseindex import Codes, Store
+    >>> store = Store.for_target(512, 16, false_hit=1e-4, capacity=5_000, seed=3)
+    >>> _ = store.add(Codes.random(3_000, 512, 16, seed=3))
+    >>> path = os.path.join(tempfile.mkdtemp(), "orchard.sidx"); store.save(path)
+    >>> args = argparse.Namespace(path=path, json=False, openmetrics=False, probe=0, source="uniform", seed=None,
+    ...                           false_hit=None, warn_fraction=None, plot=None)
+    >>> out = io.StringIO()
+    >>> with contextlib.redirect_stdout(out):
+    ...     status = run(args)
+    >>> status, out.getvalue().splitlines()[0]
+    (0, 'status: HEALTHY  (3,000 codes stored, 0 removed awaiting compact)')
+    >>> run(argparse.Namespace(**{**vars(args), "path": path + ".missing"}))
+    2
+    """
     from .store import Store
 
     if args.probe < 0:
@@ -92,7 +125,22 @@ def plot_headroom(store, report, path) -> str:
     """Draw predicted false-hit chance per query against stored codes; return the path.
 
     Uniform and usage-aware model curves, the target, the store's position
-    and the latest probe with its 95% interval (or its upper bound).
+    and the latest probe with its 95% interval (or its upper bound). Needs
+    matplotlib (``pip install 'sparseindex[plot]'``); ImportError without it.
+
+    Examples
+    --------
+    >>> import os, tempfile
+    >>> from sparseindex import Codes, Store
+    >>> store = Store.for_target(512, 16, false_hit=1e-4, capacity=5_000, seed=3)
+    >>> _ = store.add(Codes.random(3_000, 512, 16, seed=3))
+    >>> path = os.path.join(tempfile.mkdtemp(), "headroom.png")
+    >>> try:
+    ...     written = plot_headroom(store, store.health(), path)
+    ... except ImportError:                  # matplotlib not installed: nothing drawn
+    ...     written = None
+    >>> written is None or (written == path and open(path, "rb").read(4)[1:] == b"PNG")
+    True
     """
     import matplotlib
 

@@ -48,7 +48,16 @@ def _number(text):
 
 
 def add_parser(subparsers):
-    """Register ``plan`` on an argparse sub-parser collection; return it."""
+    """Register ``plan`` on an argparse sub-parser collection; return it.
+
+    Examples
+    --------
+    >>> sub = argparse.ArgumentParser(prog="sparseindex").add_subparsers()
+    >>> args = add_parser(sub).parse_args(["--bits", "2048", "--active", "40", "--false-hit", "1e-9",
+    ...                                    "--capacity", "1,000,000"])
+    >>> args.bits, args.capacity, args.noise, args.recall, args.max_detectors
+    (2048, 1000000, 0.0, 0.999, 8)
+    """
     p = subparsers.add_parser(
         "plan",
         help="choose segment, threshold and detectors for a false-hit target",
@@ -156,7 +165,25 @@ def _report(best):
 
 
 def run(args):
-    """Carry out ``sparseindex plan``; return the exit status."""
+    """Carry out ``sparseindex plan``; return the exit status.
+
+    The table goes to stdout; a request that cannot be met, or a malformed
+    one, prints one line on stderr and returns 2.
+
+    Examples
+    --------
+    >>> args = argparse.Namespace(bits=2048, active=40, false_hit=1e-9, capacity=10**6, noise=0.25,
+    ...                           recall=0.999, max_detectors=8, json=False)
+    >>> import contextlib, io
+    >>> out = io.StringIO()
+    >>> with contextlib.redirect_stdout(out):
+    ...     status = run(args)
+    >>> lines = out.getvalue().splitlines()
+    >>> status, lines[0], [line.split()[1:4] for line in lines if "chosen" in line]
+    (0, 'sparseindex plan: 2,048-bit codes with 40 set bits', [['21', '12', '1']])
+    >>> run(argparse.Namespace(**{**vars(args), "noise": 0.95}))   # no plan reaches that recall
+    2
+    """
     try:
         best = plan(args.bits, args.active, false_hit=args.false_hit,
                     capacity=args.capacity, noise=args.noise, recall=args.recall,

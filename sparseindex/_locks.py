@@ -26,7 +26,17 @@ __all__ = ["ReadWriteLock"]
 
 
 class ReadWriteLock:
-    """Many readers or one writer, writer-preferring, reads re-entrant per thread."""
+    """Many readers or one writer, writer-preferring, reads re-entrant per thread.
+
+    Examples
+    --------
+    >>> lock = ReadWriteLock()
+    >>> with lock.reading():
+    ...     lock.writing().__enter__()
+    Traceback (most recent call last):
+    ...
+    RuntimeError: a thread that holds the read lock cannot take the write lock
+    """
 
     def __init__(self):
         self._cond = threading.Condition(threading.Lock())
@@ -37,11 +47,37 @@ class ReadWriteLock:
 
     @property
     def readers(self) -> int:
-        """Read holds right now (nested holds count once each)."""
+        """Read holds right now (nested holds count once each).
+
+        Examples
+        --------
+        >>> lock = ReadWriteLock()
+        >>> with lock.reading():
+        ...     lock.readers
+        1
+        >>> lock.readers
+        0
+        """
         return self._readers
 
     @contextmanager
     def reading(self):
+        """Hold the lock shared for the ``with`` block; waits while a writer holds or waits.
+
+        A thread that already reads enters at once (reads nest).
+
+        Examples
+        --------
+        >>> import threading
+        >>> lock, seen = ReadWriteLock(), []
+        >>> with lock.reading():
+        ...     t = threading.Thread(target=lambda: seen.append(lock.readers))
+        ...     with lock.reading():   # nested in this thread
+        ...         pass
+        ...     t.start(); t.join()
+        >>> seen
+        [1]
+        """
         depth = getattr(self._depth, "n", 0)
         with self._cond:
             if depth == 0:
@@ -60,6 +96,21 @@ class ReadWriteLock:
 
     @contextmanager
     def writing(self):
+        """Hold the lock alone for the ``with`` block; waits until every reader has left.
+
+        Examples
+        --------
+        >>> import threading
+        >>> lock, order = ReadWriteLock(), []
+        >>> def reader():
+        ...     with lock.reading():
+        ...         order.append("read")
+        >>> with lock.writing():
+        ...     t = threading.Thread(target=reader); t.start()
+        ...     order.append("write")
+        >>> t.join(); order
+        ['write', 'read']
+        """
         if getattr(self._depth, "n", 0):
             raise RuntimeError("a thread that holds the read lock cannot take the write lock")
         with self._cond:

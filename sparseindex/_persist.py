@@ -55,6 +55,14 @@ class StoreState:
 
     ``weights`` and ``max_sample`` are derived (not stored): :func:`read_file`
     recomputes them from ``words``.
+
+    Examples
+    --------
+    >>> from sparseindex import Store
+    >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
+    >>> state = store._state()        # what Store.save hands to save_file
+    >>> state.rows, state.bits, state.postings.shape[0], state.weights is None
+    (2, 64, 5, True)
     """
 
     bits: int
@@ -118,7 +126,20 @@ def _round_up(n: int) -> int:
 
 def encode(state: StoreState):
     """The file as ``(head, pieces, size)``: ``head`` is the preamble and
-    header bytes; ``pieces`` are ``(offset, uint8 array)`` in file order."""
+    header bytes; ``pieces`` are ``(offset, uint8 array)`` in file order.
+
+    Every offset is a multiple of 64 and the file ends where the last piece
+    does. O(size) for the CRC32s; the arrays are not copied when they are
+    already little-endian and contiguous.
+
+    Examples
+    --------
+    >>> from sparseindex import Store
+    >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
+    >>> head, pieces, size = encode(store._state())
+    >>> head[:8] == MAGIC, all(offset % 64 == 0 for offset, _ in pieces), size
+    (True, True, 1674)
+    """
     table, pieces = [], []
     for name, array in _section_arrays(state):
         raw = _little(array)
@@ -181,6 +202,16 @@ def _chunks(head, pieces):
 
 
 def dumps(state: StoreState) -> bytes:
+    """The whole file as one ``bytes`` object (the pickle path of a Store).
+
+    Examples
+    --------
+    >>> from sparseindex import Store
+    >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
+    >>> data = dumps(store._state())
+    >>> len(data), read_bytes(data).rows
+    (1674, 2)
+    """
     head, pieces, size = encode(state)
     out = bytearray()
     for chunk in _chunks(head, pieces):
@@ -215,6 +246,16 @@ def save_file(path, state: StoreState) -> None:
     its previous content and the error propagates (a failed fsync is never
     retried). If only the directory ``fsync`` fails, the previous file is
     put back under ``path`` from a hard link taken before the rename.
+
+    Examples
+    --------
+    >>> import os, tempfile
+    >>> from sparseindex import Store
+    >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
+    >>> folder = tempfile.mkdtemp(); path = os.path.join(folder, "depot.sidx")
+    >>> save_file(path, store._state())
+    >>> os.listdir(folder), os.path.getsize(path)      # no temporary file left behind
+    (['depot.sidx'], 1674)
     """
     path = os.fspath(path)
     head, pieces, _ = encode(state)
@@ -605,6 +646,18 @@ def read_file(path, *, mmap: bool) -> tuple[StoreState, object]:
     With ``mmap`` the arrays are views of a private (copy-on-write) mapping
     of the file; otherwise of one buffer the size of the file. Nothing larger
     than the file is allocated, and only after the header has been checked.
+    Returns ``(state, owner)``; keep ``owner`` (the mapping or the buffer)
+    alive as long as the arrays are used.
+
+    Examples
+    --------
+    >>> import os, tempfile
+    >>> from sparseindex import Store
+    >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
+    >>> path = os.path.join(tempfile.mkdtemp(), "depot.sidx"); store.save(path)
+    >>> state, owner = read_file(path, mmap=True)
+    >>> type(owner).__name__, state.next_id, state.weights.tolist()
+    ('mmap', 2, [3, 2])
     """
     flags = os.O_RDONLY | getattr(os, "O_NONBLOCK", 0) | getattr(os, "O_CLOEXEC", 0)
     fd = os.open(os.fspath(path), flags)  # O_NONBLOCK: a FIFO must not hang the open
@@ -637,7 +690,19 @@ def read_file(path, *, mmap: bool) -> tuple[StoreState, object]:
 
 
 def read_bytes(data) -> StoreState:
-    """Validated state of a store held in memory (the pickle path); copies ``data``."""
+    """Validated state of a store held in memory (the pickle path); copies ``data``.
+
+    Examples
+    --------
+    >>> from sparseindex import Store
+    >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
+    >>> data = bytearray(dumps(store._state()))
+    >>> data[-1] ^= 1                                   # one flipped bit in the last section
+    >>> read_bytes(data)
+    Traceback (most recent call last):
+    ...
+    sparseindex.errors.StoreFormatError: section 'postings': CRC32 mismatch: the section is corrupt
+    """
     raw = memoryview(data).cast("B")
     size = raw.nbytes
     pre = bytes(raw[: PREAMBLE.size])

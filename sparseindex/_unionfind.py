@@ -30,7 +30,17 @@ __all__ = ["row_hashes", "exact_copy_owners", "component_roots", "greedy_first"]
 
 @kernel
 def row_hashes(words):
-    """A 64-bit hash of every packed row (splitmix64 fold over its words)."""
+    """A 64-bit hash of every packed row (splitmix64 fold over its words).
+
+    Equal rows hash alike; callers still compare words, so a collision
+    never merges two different rows. O(rows · words).
+
+    Examples
+    --------
+    >>> h = row_hashes(np.array([[1, 2], [1, 2], [3, 0]], dtype=np.uint64))
+    >>> bool(h[0] == h[1]), bool(h[0] == h[2])
+    (True, False)
+    """
     n = words.shape[0]
     out = np.empty(n, dtype=np.uint64)
     for r in range(n):
@@ -49,6 +59,15 @@ def exact_copy_owners(order, later, words):
     the rows come in index order and the first of each distinct code is
     its smallest row; ``later[t]`` counts the positions after ``t`` in its
     run (``_banding.run_pair_counts`` of the sorted hashes).
+
+    Examples
+    --------
+    >>> from sparseindex._banding import run_pair_counts
+    >>> words = np.array([[5], [7], [5], [5]], dtype=np.uint64)
+    >>> h = row_hashes(words)
+    >>> order = np.argsort(h, kind="stable")
+    >>> exact_copy_owners(order, run_pair_counts(h[order]), words).tolist()
+    [0, 1, 0, 0]
     """
     n = order.shape[0]
     n_words = words.shape[1]
@@ -85,7 +104,16 @@ def _find(parent, x):
 
 @kernel
 def component_roots(count, lo, hi):
-    """Root (smallest member) of every element's component under the pairs ``(lo[t], hi[t])``."""
+    """Root (smallest member) of every element's component under the pairs ``(lo[t], hi[t])``.
+
+    Union–find with path halving, the smaller root always kept (Tarjan
+    1975): O((count + pairs) · α(count)).
+
+    Examples
+    --------
+    >>> component_roots(5, np.array([3, 1]), np.array([4, 3])).tolist()
+    [0, 1, 2, 1, 1]
+    """
     parent = np.arange(count, dtype=np.int64)
     for t in range(lo.shape[0]):
         a = _find(parent, lo[t])
@@ -110,6 +138,17 @@ def greedy_first(uid, first, weight, nbr_indptr, nbr, nbr_overlap):
     unique can become a representative (a later copy always has that
     first copy's representative, or the first copy itself, to join), so
     ``rep[u]`` is the first copy's index once it is one.
+
+    Examples
+    --------
+    Three distinct codes, 0 and 1 matching, 1 and 2 matching (each overlap
+    3): code 1 joins 0, and code 2 stays alone because 1 is no
+    representative.
+
+    >>> uid, first, weight = np.array([0, 1, 2]), np.array([0, 1, 2]), np.array([4, 4, 4])
+    >>> indptr, nbr, overlap = np.array([0, 1, 3, 4]), np.array([1, 0, 2, 1]), np.array([3, 3, 3, 3])
+    >>> greedy_first(uid, first, weight, indptr, nbr, overlap).tolist()
+    [0, 0, 2]
     """
     n = uid.shape[0]
     labels = np.empty(n, dtype=np.int64)

@@ -106,6 +106,15 @@ class DedupeSummary:
         The work model's time of each method considered.
     seconds : dict
         Measured time of each stage and ``"total"``.
+
+    Examples
+    --------
+    >>> rows = [[1, 2, 3, 4], [1, 2, 3, 5], [7, 8, 9, 10], [1, 2, 3, 4]]
+    >>> labels, summary = dedupe(rows, min_overlap=3, bits=16, return_summary=True)
+    >>> summary.groups, summary.duplicates, summary.exact_copies, summary.method
+    (2, 2, 1, 'index')
+    >>> print(str(summary).splitlines()[3])
+      groups: 2; duplicates: 2; largest group: 3
     """
 
     codes: int
@@ -131,7 +140,16 @@ class DedupeSummary:
     seconds: dict = field(default_factory=dict)
 
     def to_dict(self) -> dict:
-        """Plain-Python dict (JSON-serialisable)."""
+        """Plain-Python dict (JSON-serialisable).
+
+        Examples
+        --------
+        >>> import json
+        >>> _, summary = dedupe([[1, 2, 3], [1, 2, 4]], min_overlap=2, bits=8, return_summary=True)
+        >>> d = summary.to_dict()
+        >>> d["groups"], d["matched_pairs"], json.loads(json.dumps(d))["mode"]
+        (1, 1, 'first')
+        """
         return asdict(self)
 
     def __str__(self) -> str:
@@ -265,6 +283,15 @@ class TqdmProgress:
 
     ``delay`` seconds pass before a bar is shown, so short runs print
     nothing. Call :meth:`close` at the end.
+
+    Examples
+    --------
+    >>> import io
+    >>> out = io.StringIO()
+    >>> bar = TqdmProgress(delay=0.0, file=out)
+    >>> bar("index", 5, 10); bar("index", 10, 10); bar.close()
+    >>> "index" in out.getvalue()
+    True
     """
 
     def __init__(self, delay: float = 0.5, file=None):
@@ -284,6 +311,13 @@ class TqdmProgress:
         self._bar.update(done - self._bar.n)
 
     def close(self):
+        """Close the current bar (if any); the next call starts a new one.
+
+        Examples
+        --------
+        >>> bar = TqdmProgress()
+        >>> bar.close()   # nothing drawn yet: nothing to close
+        """
         if self._bar is not None:
             self._bar.close()
         self._bar = None

@@ -25,6 +25,15 @@ class StoreFormatError(ValueError):
     ``"header"``, ``"words"``, ``"postings"``, ...); the message says what.
     Loading raises it before any of the file's data reaches a kernel, and a
     failed load changes nothing.
+
+    Examples
+    --------
+    >>> err = StoreFormatError("postings", "CRC32 mismatch", path="depot.sidx")
+    >>> str(err)
+    "depot.sidx: section 'postings': CRC32 mismatch"
+    >>> import pickle
+    >>> pickle.loads(pickle.dumps(err)).section
+    'postings'
     """
 
     def __init__(self, section: str, problem: str, path=None):
@@ -39,12 +48,46 @@ class StoreFormatError(ValueError):
 
 
 class ReadOnlyStoreError(RuntimeError):
-    """A store opened read-only (memory-mapped by default) was asked to change."""
+    """A store opened read-only (memory-mapped by default) was asked to change.
+
+    Examples
+    --------
+    >>> issubclass(ReadOnlyStoreError, RuntimeError)
+    True
+    >>> raise ReadOnlyStoreError("add: this store is read-only")
+    Traceback (most recent call last):
+    ...
+    sparseindex.errors.ReadOnlyStoreError: add: this store is read-only
+    """
 
 
 class FormatVersionWarning(UserWarning):
-    """A store file was written by a newer minor format version; unknown fields were ignored."""
+    """A store file was written by a newer minor format version; unknown fields were ignored.
+
+    Examples
+    --------
+    >>> import warnings
+    >>> with warnings.catch_warnings(record=True) as seen:
+    ...     warnings.simplefilter("always")
+    ...     warnings.warn("format 1.3 is newer than 1.0", FormatVersionWarning)
+    >>> seen[0].category.__name__, issubclass(FormatVersionWarning, UserWarning)
+    ('FormatVersionWarning', True)
+    """
 
 
 class CapacityWarning(UserWarning):
-    """An ``add`` took the store past its capacity at the false-hit target."""
+    """An ``add`` took the store past its capacity at the false-hit target.
+
+    Examples
+    --------
+    >>> import warnings
+    >>> from sparseindex import Codes, Store
+    >>> store = Store(64, threshold=2, seed=0)
+    >>> store.watch(false_hit=0.05)
+    >>> with warnings.catch_warnings(record=True) as seen:
+    ...     warnings.simplefilter("always")
+    ...     for k in range(40):
+    ...         _ = store.add(Codes.random(1, 64, 4, seed=k))
+    >>> any(w.category is CapacityWarning for w in seen)
+    True
+    """

@@ -78,6 +78,14 @@ class ProbeResult:
     model's chance of at least one false hit per query (independence across
     codes assumed) and ``predicted_hits`` its expected false hits per query
     (exact by linearity), from the model matching ``source``.
+
+    Examples
+    --------
+    >>> from sparseindex import Codes, Store
+    >>> store = Store(256, threshold=3, seed=1); _ = store.add(Codes.random(2_000, 256, 8, seed=1))
+    >>> r = store.probe(1_000, seed=3)      # a crowded little store: most random queries hit
+    >>> r.queries, r.queries_hit, r.low <= r.rate <= r.high, round(r.predicted_rate, 3)
+    (1000, 883, True, 0.878)
     """
 
     source: str
@@ -97,6 +105,16 @@ class ProbeResult:
     seconds: float
 
     def to_dict(self) -> dict:
+        """Plain values (JSON-ready).
+
+        Examples
+        --------
+        >>> from sparseindex import Codes, Store
+        >>> store = Store(256, threshold=3, seed=1); _ = store.add(Codes.random(500, 256, 8, seed=1))
+        >>> d = store.probe(200, seed=3).to_dict()
+        >>> d["queries"], d["source"], sorted(d)[:3]
+        (200, 'uniform', ['high', 'hits', 'hits_per_query'])
+        """
         return dataclasses.asdict(self)
 
     def __str__(self) -> str:
@@ -115,7 +133,18 @@ class Health:
 
     Capacities and headroom are in codes; chances are per unrelated query.
     Fields are None where they do not apply (no target, an empty store,
-    too few codes to measure usage).
+    too few codes to measure usage). ``docs/health.md`` explains every field.
+
+    Examples
+    --------
+    >>> from sparseindex import Codes, Store
+    >>> store = Store.for_target(2048, 40, false_hit=1e-6, capacity=50_000, seed=1)
+    >>> _ = store.add(Codes.random(1_000, 2048, 40, seed=2))
+    >>> h = store.health()
+    >>> h.status, h.items, h.capacity, h.headroom_codes
+    ('healthy', 1000, 1591814, 1590814.0)
+    >>> print(str(h).splitlines()[0])
+    status: HEALTHY  (1,000 codes stored, 0 removed awaiting compact)
     """
 
     status: str
@@ -165,7 +194,16 @@ class Health:
     seconds: float
 
     def to_dict(self) -> dict:
-        """Plain values (JSON-ready); infinities become None, the probe a dict."""
+        """Plain values (JSON-ready); infinities become None, the probe a dict.
+
+        Examples
+        --------
+        >>> from sparseindex import Codes, Store
+        >>> store = Store(64, threshold=2, seed=0); _ = store.add(Codes.random(10, 64, 4, seed=1))
+        >>> d = store.health().to_dict()
+        >>> d["status"], d["items"], d["capacity"], d["probe"]
+        ('unknown', 10, None, None)
+        """
         out = {}
         for f in dataclasses.fields(self):
             value = getattr(self, f.name)
@@ -177,13 +215,35 @@ class Health:
         return out
 
     def to_json(self, **kwargs) -> str:
+        """The report as JSON (``to_dict``; keyword arguments go to ``json.dumps``).
+
+        Examples
+        --------
+        >>> import json
+        >>> from sparseindex import Codes, Store
+        >>> store = Store(64, threshold=2, seed=0); _ = store.add(Codes.random(10, 64, 4, seed=1))
+        >>> json.loads(store.health().to_json())["items"]
+        10
+        """
         return json.dumps(self.to_dict(), allow_nan=False, **kwargs)
 
     def __str__(self) -> str:
         return _text(self)
 
     def to_openmetrics(self, prefix: str = "sparseindex") -> str:
-        """The OpenMetrics text exposition of this report, ending in ``# EOF``."""
+        """The OpenMetrics text exposition of this report, ending in ``# EOF``.
+
+        ``prefix`` starts every metric family name (letters, digits, ``_``).
+
+        Examples
+        --------
+        >>> from sparseindex import Codes, Store
+        >>> store = Store.for_target(2048, 40, false_hit=1e-6, capacity=50_000, seed=1)
+        >>> _ = store.add(Codes.random(1_000, 2048, 40, seed=2))
+        >>> text = store.health().to_openmetrics(prefix="depot")
+        >>> [line for line in text.splitlines() if line.startswith("depot_items")], text.splitlines()[-1]
+        (['depot_items 1000'], '# EOF')
+        """
         return _openmetrics(self, prefix)
 
 
@@ -296,7 +356,16 @@ def _usage_estimate(store, q, usage, items, refresh_fraction, force):
 
 
 def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh_fraction=0.05) -> Health:
-    """The :class:`Health` of ``store`` (call :meth:`Store.health`)."""
+    """The :class:`Health` of ``store`` (call :meth:`Store.health`).
+
+    Examples
+    --------
+    >>> from sparseindex import Codes, Store
+    >>> store = Store(256, threshold=4, seed=0); _ = store.add(Codes.random(100, 256, 8, seed=1))
+    >>> h = compute(store, false_hit=0.01)
+    >>> h.status, h.capacity, compute(store).status       # no target: status unknown
+    ('healthy', 377, 'unknown')
+    """
     started = time.perf_counter()
     store._ensure_usage()
     with store._rw.reading():
@@ -395,7 +464,19 @@ def classify(items, capacity, warn_fraction) -> str:
 
 
 def run_probe(store, queries=10_000, *, source="uniform", seed=None, batch=2048) -> ProbeResult:
-    """Random unrelated queries against ``store`` (call :meth:`Store.probe`)."""
+    """Random unrelated queries against ``store`` (call :meth:`Store.probe`).
+
+    Queries go through the ordinary batch path ``batch`` at a time; they do
+    not count as served queries. O(queries · query cost).
+
+    Examples
+    --------
+    >>> from sparseindex import Codes, Store
+    >>> store = Store(256, threshold=3, seed=1); _ = store.add(Codes.random(500, 256, 8, seed=1))
+    >>> r = run_probe(store, 300, seed=4, batch=100)
+    >>> r.queries, r.source, store.health().queries_total
+    (300, 'uniform', 0)
+    """
     from .codes import Codes
 
     if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
@@ -558,6 +639,13 @@ def metric_table(h: Health, prefix: str = "sparseindex"):
 
     The one list both the OpenMetrics text and the tests read; families
     whose value does not apply (None) are left out.
+
+    Examples
+    --------
+    >>> from sparseindex import Codes, Store
+    >>> store = Store(64, threshold=2, seed=0); _ = store.add(Codes.random(10, 64, 4, seed=1))
+    >>> [family for family, kind, *_ in metric_table(store.health()) if kind == "counter"]
+    ['sparseindex_queries', 'sparseindex_hits', 'sparseindex_codes_added', 'sparseindex_codes_removed']
     """
     p = prefix
     fams = []

@@ -81,7 +81,17 @@ class PlanError(ValueError):
     """No configuration meets the requested targets.
 
     Raised by :func:`sparseindex.planner.plan`; the message names the target
-    that cannot be met and the best values that can be reached.
+    that cannot be met and the best values that can be reached. A
+    ``ValueError``, so callers that catch bad arguments catch it too.
+
+    Examples
+    --------
+    >>> from sparseindex import plan
+    >>> try:
+    ...     plan(2048, 40, false_hit=1e-9, capacity=10**6, noise=0.95)
+    ... except PlanError as exc:
+    ...     print(isinstance(exc, ValueError), str(exc)[:60])
+    True false_hit=1e-09 at capacity=1,000,000 cannot be met together
     """
 
 
@@ -1650,6 +1660,17 @@ class UsageFalseHits:
         replaced by the upper bound ``min(1, sum of detector chances)``; 0
         means every value is exact (then the estimate is unbiased, otherwise
         it errs high).
+
+    Examples
+    --------
+    Two stored codes of 6 bits each, one detector over all six (threshold
+    3), queries of 8 bits drawn evenly from 256:
+
+    >>> p = usage_bernoulli(np.full(256, 8 / 256), 8)
+    >>> codes = [np.array([[0, 1, 2, 3, 4, 5]]), np.array([[10, 11, 12, 13, 14, 15]])]
+    >>> e = usage_false_hits(p, codes, 3, 8, items=100)
+    >>> e.codes_sampled, e.items, e.bounded_codes, f"{e.per_code:.3g}", f"{e.expected:.3g}"
+    (2, 100, 0, '0.000387', '0.0387')
     """
 
     expected: float

@@ -78,6 +78,16 @@ class Plan:
         The request the plan answers.
     alternatives : tuple of Plan
         The next-best configurations, best first (empty on alternatives).
+
+    Examples
+    --------
+    >>> p = plan(2048, 40, false_hit=1e-6, capacity=50_000)
+    >>> p.segment, p.threshold, p.detectors, p.postings_per_code, p.capacity
+    (7, 7, 1, 7, 1591814)
+    >>> print(str(p).splitlines()[0])
+    segment 7 of 40 set bits, threshold 7, 1 detector per code (7 postings per code)
+    >>> len(p.alternatives), p.alternatives[0].alternatives
+    (3, ())
     """
 
     segment: int
