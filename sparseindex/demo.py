@@ -33,6 +33,7 @@ import math
 import os
 import sys
 import tempfile
+import textwrap
 import time
 import warnings
 
@@ -246,18 +247,24 @@ def _probe_count(store, wanted) -> int:
 
 
 def _warm_up(folder) -> None:
-    """Compile (or load from numba's cache) the kernels the demo calls, on a tiny store."""
-    codes = Codes.random(1_000, 256, 12, seed=5)  # enough codes per bit for the usage-aware estimate
+    """Compile (or load from numba's cache) the kernels the demo calls, on small stores.
+
+    The store gets more than one postings block (65,536 detectors each), so
+    the block merges and the parallel single query are compiled here too.
+    """
+    codes = Codes.random(70_000, 256, 12, seed=5)
     store = Store(256, threshold=4, segment=8, seed=5)
-    store.add(codes[:900])
+    store.add(codes[:40_000])
+    store.add(codes[40_000:69_000])
     store.query(codes[0])
     store.query_many(codes[:50])
-    store.find_or_add(codes[850:], min_overlap=9)
+    store.find_or_add(codes[68_900:], min_overlap=9)
     store.watch(false_hit=0.5)
     store.health()
     store.probe(100, seed=1)
-    dedupe(codes, min_overlap=9, method="index")
-    dedupe(codes, min_overlap=9, method="banding", seed=1)
+    small = codes[:1_000]
+    dedupe(small, min_overlap=9, method="index", mode="components")
+    dedupe(small, min_overlap=9, method="banding", seed=1)
     path = os.path.join(folder, ".warm-up.sidx")
     store.save(path)
     Store.load(path, mmap=True).query_many(codes[:5])
@@ -278,7 +285,7 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     ----------
     size : int
         Bolts in the catalogue the store is planned for (>= 1,000). The
-        demo then adds about ``size / 4`` uploads and fills the store to
+        demo then adds about ``size / 8`` uploads and fills the store to
         110% of the capacity the plan gives it.
     seed : int
         Seeds every random choice: the same seed prints the same figures
@@ -437,8 +444,9 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     n_probe = _probe_count(store, PROBES)
     unknown = store.probe(n_probe, seed=code_seed(3))
     say(f"   unknown bolts (never catalogued): {unknown.queries:,} random codes of {ACTIVE} features")
-    say(f"     false-hit rate  {unknown.rate:.5f} per query measured ({unknown.queries_hit:,} queries hit; 95% CI "
-        f"{unknown.low:.5f}-{unknown.high:.5f}); model {unknown.predicted_rate:.5f}")
+    say(f"     false-hit rate  {unknown.rate:.5f} per query measured ({unknown.queries_hit:,} queries hit; "
+        f"95% CI {unknown.low:.5f}-{unknown.high:.5f})")
+    say(f"                     model {unknown.predicted_rate:.5f}")
     expected_unknown = unknown.predicted_hits * unknown.queries
     say(f"     false hits      {unknown.hits:,} measured in all; model {expected_unknown:.2f} expected "
         f"({_poisson_range(expected_unknown)})")
@@ -451,7 +459,7 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
     # -- 4. dedupe the upload batch ----------------------------------------
     t0 = time.perf_counter()
-    n_new = max(500, size // 4)
+    n_new = max(500, size // 8)
     n_again = max(20, size // 100)
     fresh, in_batch_src, changed = planted_duplicates(n_new, BITS, ACTIVE, fraction=0.1, max_changed=MAX_CHANGED,
                                                       seed=code_seed(4))
@@ -525,12 +533,12 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     say(f"5. Health as the catalogue keeps growing: later seasons add bolts up to {FILL_TO:.0%} of the capacity")
     say(f"   ({_n(capacity)} bolts; warning level {WARN_FRACTION:.0%}). Each row probes random unknown bolts")
     say("   (store.probe); store.watch reports every status change (>>).")
-    say("   bolts stored    fill   headroom [bolts]   false hits/query: model   probe: measured (95% CI)"
-        "   probes   status")
+    say("   bolts stored    fill  headroom   false hits per query:                 probes  status")
+    say("                          [bolts]   model   probe (95% CI)")
 
     def row(s):
-        say(f"   {s.items:>12,}  {100 * s.fill:5.1f}%  {_n(s.headroom):>17}   {s.false_hit_now:>23.5f}   "
-            f"{s.probes_hit / s.probes:.5f} ({s.low:.5f}-{s.high:.5f})  {s.probes:>7,}   {s.status}")
+        say(f"   {s.items:>12,}  {100 * s.fill:5.1f}%  {_n(s.headroom):>8}   {s.false_hit_now:.5f} "
+            f"{s.probes_hit / s.probes:.5f} ({s.low:.5f}-{s.high:.5f})  {s.probes:>6,}  {s.status}")
 
     def stage(label):
         hh = store.health()
@@ -559,12 +567,14 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
                     curve.append((hh.items, hh.false_hit_now, hh.headroom_codes))
         for w in caught:
             if issubclass(w.category, CapacityWarning):
-                say(f"   >> CapacityWarning: {w.message}")
+                say(textwrap.fill(f">> CapacityWarning: {w.message}", width=100, initial_indent="   ",
+                                  subsequent_indent="      ", break_on_hyphens=False))
         stage(f"{mark:.0%} of capacity")
     final_health = store.health()
     say("   store.health() now:")
     for line in str(final_health).splitlines():
-        say(f"     {line}")
+        say(textwrap.fill(line, width=100, initial_indent="     ", subsequent_indent="       ",
+                          break_on_hyphens=False))
     seconds["health"] = time.perf_counter() - t0
     say()
 
@@ -585,8 +595,9 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
             and np.array_equal(served_hits.overlaps, fresh_hits.overlaps))
     file_bytes = os.path.getsize(store_path)
     say("6. Save, then serve memory-mapped")
-    say(f"   saved {len(store):,} bolts to {store_path} in {t_save:.2f} s ({file_bytes / 2**20:.1f} MiB, "
-        f"{file_bytes / len(store):.0f} bytes per bolt; atomic: temporary file, fsync, rename)")
+    say(f"   saved {len(store):,} bolts in {t_save:.2f} s ({file_bytes / 2**20:.1f} MiB, "
+        f"{file_bytes / len(store):.0f} bytes per bolt; written atomically) to")
+    say(f"     {store_path}")
     say(f"   Store.load(mmap=True) checked and opened it in {t_open:.2f} s (read-only: {served.read_only}); "
         f"{q_count:,} rescans in {t_query:.2f} s")
     say(f"   answers identical to the in-memory store: {'yes' if same else 'NO'}")
@@ -606,11 +617,11 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
         say("7. No plot (not asked for)")
     say()
     seconds["total"] = time.perf_counter() - t_start
-    say(f"Done in {seconds['total']:.1f} s wall time (" + ", ".join(
-        f"{k} {v:.1f} s" for k, v in seconds.items() if k != "total") + ").")
-    say("A hit is probabilistic evidence, not proof of identity: with codes that stand for people, do not let a")
-    say("hit alone decide access, money or identity; check the stored code and the exact overlap against your")
-    say("own rules.")
+    say(f"Done in {seconds['total']:.1f} s wall time")
+    say("  (" + ", ".join(f"{k} {v:.1f} s" for k, v in seconds.items() if k != "total") + ").")
+    say("A hit is probabilistic evidence, not proof of identity: with codes that stand for people, do not")
+    say("let a hit alone decide access, money or identity; check the stored code and the exact overlap")
+    say("against your own rules.")
     return DemoResult(
         size=size, seed=seed, plan=p, recall=tuple(recalls), unknown=unknown, uploads=total,
         planted_in_batch=int(planted.sum()), found_in_batch=found_in_batch, unplanted_merges=unplanted_merges,

@@ -119,7 +119,7 @@ def test_false_hits_within_3_sigma_of_the_model(demo):
         assert low <= number(seen) <= high, (seen, expected)
     # unknown bolts: queries with a hit ~ Binomial(Q, 1 - (1 - p)^N)
     rate, hit, low_ci, high_ci, model_rate = grab(
-        r"false-hit rate\s+([\d.]+) per query measured \(([\d,]+) queries hit; 95% CI ([\d.]+)-([\d.]+)\); "
+        r"false-hit rate\s+([\d.]+) per query measured \(([\d,]+) queries hit; 95% CI ([\d.]+)-([\d.]+)\)\s+"
         r"model ([\d.]+)", out, 1)[0]
     queries = number(grab(r"unknown bolts \(never catalogued\): ([\d,]+) random codes", out, 1)[0])
     predicted = -math.expm1(SIZE * math.log1p(-scipy_per_code(s, t, d, ACTIVE)))
@@ -131,7 +131,7 @@ def test_false_hits_within_3_sigma_of_the_model(demo):
 def test_dedupe_finds_the_planted_copies(demo):
     _, out, _, _ = demo
     found, planted = grab(r"planted re-uploads found ([\d,]+) of ([\d,]+)", out, 1)[0]
-    assert number(planted) == round(0.1 * SIZE // 4) and number(found) == number(planted)
+    assert number(planted) == round(0.1 * max(500, SIZE // 8)) and number(found) == number(planted)
     assert grab(r"merges not planted ([\d,]+)", out, 1)[0] == "0"
     found, planted = grab(r"catalogued re-uploads found ([\d,]+) of ([\d,]+)", out, 1)[0]
     assert number(planted) == SIZE // 100 and number(found) == number(planted)
