@@ -530,17 +530,18 @@ class ShardedStore:
         shards = sorted(lost)
         where = [self._where[k] for k in shards]
         names = ", ".join(f"shard {k} of {self._shards} (worker {self._where[k]}): {lost[k]}" for k in shards)
-        if self._broken is not None:
-            advice = f"{self._broken}; "
-        else:
-            advice = ""
+        changed = [k for k in shards if self._dirty[k]]
         if self._saved is None:
-            advice += ("this store was never saved, so the codes of the lost shard are gone; "
-                       "rebuild the store from your data")
+            advice = ("this store was never saved, so the codes of the lost shard are gone; "
+                      "rebuild the store from your data")
+        elif self._broken is not None or changed:
+            why = self._broken or f"shards {changed} changed after the last save"
+            advice = (f"{why}, so only the last save can be trusted: reload it with "
+                      f"ShardedStore.load(client, {self._saved[0]!r}) (changes since that save are lost)")
         else:
             directory = self._saved[0]
-            advice += (f"recover with store.recover() (rebuilds lost shards unchanged since the last save "
-                       f"from {directory!r}) or reload the last save with ShardedStore.load(client, {directory!r})")
+            advice = (f"recover with store.recover() (rebuilds lost shards unchanged since the last save "
+                      f"from {directory!r}) or reload the last save with ShardedStore.load(client, {directory!r})")
         return ShardLostError(f"{doing}: {names}. Nothing was returned, since an answer without "
                               f"that shard would be incomplete; {advice}", shards, where)
 
@@ -549,7 +550,7 @@ class ShardedStore:
             raise RuntimeError(f"{doing}: this ShardedStore is closed")
         for k in range(self._shards):
             if k not in self._lost and self._gone(k):
-                self._lost[k] = "its worker is gone"
+                self._lost[k] = self._gone_reason(k)
         if self._lost:
             raise self._lost_error(self._lost, doing)
         if self._broken is not None:
@@ -568,18 +569,25 @@ class ShardedStore:
             try:
                 return fut.result(timeout=POLL_SECONDS)
             except (TimeoutError, asyncio.TimeoutError):
-                if self._gone(k) or not self._worker_alive(k):
-                    raise _Lost("its worker is gone") from None
+                if self._gone(k):
+                    raise _Lost(self._gone_reason(k)) from None
+                if not self._worker_alive(k):
+                    raise _Lost("its worker left the cluster") from None
             except Exception as exc:
                 if self._reachable(k):
                     raise  # the Store itself raised: an ordinary error
                 raise _Lost(f"{type(exc).__name__}: {exc}") from exc
 
     def _worker_alive(self, k) -> bool:
+        """False only when the scheduler answers and no longer lists the shard's worker."""
         try:
             return self._where[k] in _worker_addresses(self._client)
-        except Exception:
-            return False
+        except Exception:  # no answer is no evidence: the actor's own status still decides
+            return True
+
+    def _gone_reason(self, k) -> str:
+        fut = self._futures[k]
+        return "it was released" if fut is None else f"its worker is gone (actor status: {fut.status})"
 
     def _reachable(self, k) -> bool:
         """After a failed call: is the shard still there? (a ping, once the cluster has settled)."""
@@ -680,7 +688,7 @@ class ShardedStore:
         """One dict per shard: its worker address, whether it is lost, and whether it changed since the last save."""
         for k in range(self._shards):
             if k not in self._lost and self._gone(k):
-                self._lost[k] = "its worker is gone"
+                self._lost[k] = self._gone_reason(k)
         return [{"shard": k, "worker": self._where[k], "lost": k in self._lost, "changed_since_save": self._dirty[k]}
                 for k in range(self._shards)]
 
@@ -1270,15 +1278,11 @@ class ShardedStore:
                 raise RuntimeError("recover: this ShardedStore is closed")
             for k in range(self._shards):
                 if k not in self._lost and self._gone(k):
-                    self._lost[k] = "its worker is gone"
+                    self._lost[k] = self._gone_reason(k)
             lost = sorted(self._lost)
             if not lost:
                 return []
             if self._broken is not None or self._saved is None or any(self._dirty[k] for k in lost):
-                changed = [k for k in lost if self._dirty[k]]
-                if self._broken is None and self._saved is not None:
-                    self._broken = (f"shards {changed} changed after the last save, so their file no longer "
-                                    "holds what they held")
                 raise self._lost_error({k: self._lost[k] for k in lost}, "recover")
             known = _worker_addresses(self._client)
             if not known:
