@@ -251,6 +251,8 @@ def _warm_up(folder) -> None:
 
     The store gets more than one postings block (65,536 detectors each), so
     the block merges and the parallel single query are compiled here too.
+    Banded min-hashing is left out: ``dedupe`` picks it only for upload
+    batches large enough to pay for it (its kernels then compile in step 4).
     """
     codes = Codes.random(70_000, 256, 12, seed=5)
     store = Store(256, threshold=4, segment=8, seed=5)
@@ -262,9 +264,7 @@ def _warm_up(folder) -> None:
     store.watch(false_hit=0.5)
     store.health()
     store.probe(100, seed=1)
-    small = codes[:1_000]
-    dedupe(small, min_overlap=9, method="index", mode="components")
-    dedupe(small, min_overlap=9, method="banding", seed=1)
+    dedupe(codes[:1_000], min_overlap=9, method="index", mode="components")
     path = os.path.join(folder, ".warm-up.sidx")
     store.save(path)
     Store.load(path, mmap=True).query_many(codes[:5])
