@@ -44,8 +44,8 @@ def add_parser(subparsers):
             "memory-mapped, and draws the headroom curve when matplotlib is installed."),
         epilog=(
             "The store is filled to 110% of its planned capacity, which can be several times SIZE. At the "
-            "default size: about 30 s on 2 cores on the first run (most of it compiling the kernels), about "
-            "10 s after. A hit is probabilistic evidence, not proof of identity: do not let a hit alone decide "
+            "default size: about 45 s on 2 cores on the first run (most of it compiling the kernels), about "
+            "15 s after. A hit is probabilistic evidence, not proof of identity: do not let a hit alone decide "
             "access, money or identity."),
     )
     p.add_argument("--size", type=_count, default=DEFAULT_SIZE,

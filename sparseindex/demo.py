@@ -307,9 +307,9 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
     Notes
     -----
-    At the default size it takes about 10 s on a 2-core machine once the
-    kernels are compiled and about 30 s on the first run after installing,
-    most of it compiling them (the report says how long each part took).
+    At the default size it took 15 s on this project's 2-core machine once
+    the kernels were compiled and 43 s on the first run after installing,
+    31 s of it compiling them (the report says how long each part took).
 
     Examples
     --------
