@@ -15,6 +15,7 @@ Examples
 
 from . import model
 from .codes import Codes
+from .dedupe import DedupeSummary, dedupe  # eager: the function shares its name with the submodule
 from .errors import CapacityWarning, FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
 from .model import PlanError
 from .planner import Plan, plan
@@ -24,8 +25,6 @@ __version__ = "0.1.0"
 
 #: Names imported on first use (PEP 562), so ``import sparseindex`` stays quick.
 _LAZY = {
-    "dedupe": ".dedupe",
-    "DedupeSummary": ".dedupe",
     "Health": ".health",
     "ProbeResult": ".health",
 }

@@ -106,3 +106,18 @@ def test_plain_python_kernels_sample_exactly_like_compiled_ones():
     plain = run(code, NUMBA_DISABLE_JIT="1")
     assert compiled.returncode == 0 and plain.returncode == 0, compiled.stderr + plain.stderr
     assert compiled.stdout == plain.stdout
+
+
+def test_public_names_survive_importing_their_submodules():
+    """``sparseindex.dedupe`` is the function even after ``import sparseindex.dedupe``."""
+    code = textwrap.dedent(
+        """
+        import sparseindex
+        import sparseindex.dedupe, sparseindex.health
+        from sparseindex.dedupe import planted_duplicates
+        print(callable(sparseindex.dedupe), sparseindex.Health.__name__, sparseindex.ProbeResult.__name__)
+        """
+    )
+    result = run(code)
+    assert result.returncode == 0, result.stderr[-2000:]
+    assert result.stdout.split() == ["True", "Health", "ProbeResult"]
