@@ -23,8 +23,8 @@ Why it is exact
 Why actors
 ----------
 A shard is mutable state that must stay on one worker. An actor is exactly
-that: its method calls go to the object in place (about 1 ms a round trip
-here against about 10 ms for a submitted task), nothing is copied between
+that: its method calls go to the object in place (1–2 ms a round trip
+here against 11–13 ms for a submitted task), nothing is copied between
 workers, and when its worker dies the actor is gone and every call says so.
 A shard held as the result of a task would look immutable to the scheduler:
 a task that mutates it breaks Dask's model, and after a worker loss the
@@ -388,7 +388,7 @@ class ShardedStore:
 
     Notes
     -----
-    Every call is one round trip to every shard involved (about 1 ms on
+    Every call is one round trip to every shard involved (1–2 ms on
     loopback plus the transfer of its arguments and results), so batch
     calls are the efficient ones; ``query`` of one code is dominated by the
     round trip. The client keeps the id counter, the item count and the
