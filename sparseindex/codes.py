@@ -377,7 +377,14 @@ class Codes:
 
     @property
     def bits(self) -> int:
-        """Width of every code."""
+        """Width of every code.
+
+        Examples
+        --------
+        >>> c = Codes.from_indices([[1, 70]], bits=100)
+        >>> c.bits, c.words.shape, c.weights.tolist()
+        (100, (1, 2), [2])
+        """
         return self._bits
 
     @property
@@ -415,7 +422,13 @@ class Codes:
         return self._words.astype("<u8", copy=False).view(np.uint8).reshape(len(self), 8 * self._words.shape[1])
 
     def to_dense(self) -> np.ndarray:
-        """A (rows, bits) bool array."""
+        """A (rows, bits) bool array.
+
+        Examples
+        --------
+        >>> Codes.from_indices([[0, 2]], bits=4).to_dense().tolist()
+        [[True, False, True, False]]
+        """
         as_bytes = self._le_bytes()
         return np.unpackbits(as_bytes, axis=1, count=self._bits, bitorder="little").astype(bool)
 
@@ -446,7 +459,13 @@ class Codes:
         raise TypeError(f"to_packed dtype must be uint8 or uint64, got {dtype}")
 
     def to_bitarrays(self, endian="big") -> list:
-        """Each code as a ``bitarray`` of length ``bits``."""
+        """Each code as a ``bitarray`` of length ``bits``.
+
+        Examples
+        --------
+        >>> Codes.from_indices([[0, 2]], bits=4).to_bitarrays()[0].to01()
+        '1010'
+        """
         from bitarray import bitarray
 
         packed = self.to_packed(bitorder=endian)
@@ -459,7 +478,14 @@ class Codes:
         return out
 
     def to_scipy(self):
-        """A ``scipy.sparse.csr_array`` of dtype bool, shape (rows, bits)."""
+        """A ``scipy.sparse.csr_array`` of dtype bool, shape (rows, bits).
+
+        Examples
+        --------
+        >>> m = Codes.from_indices([[0, 2], [3]], bits=4).to_scipy()
+        >>> m.shape, m.nnz
+        ((2, 4), 3)
+        """
         import scipy.sparse as sp
 
         indptr, flat = self._csr()
@@ -557,6 +583,15 @@ def as_codes(obj, bits: int, *, what: str = "codes") -> Codes:
 
     Raises ``TypeError`` for an unaccepted form (naming the accepted ones)
     and ``ValueError`` for a wrong width or a bad row.
+
+    Examples
+    --------
+    >>> len(as_codes([[1, 2], [3]], bits=8))
+    2
+    >>> as_codes([[1, 9]], bits=8)
+    Traceback (most recent call last):
+    ...
+    ValueError: row 0: bit index 9 is out of range for bits=8 (valid 0..7)
     """
     import scipy.sparse as sp
 
@@ -595,7 +630,13 @@ def as_codes(obj, bits: int, *, what: str = "codes") -> Codes:
 
 
 def as_code(obj, bits: int, *, what: str = "code") -> Codes:
-    """Convert any accepted single-code form to a one-row :class:`Codes`."""
+    """Convert any accepted single-code form to a one-row :class:`Codes`.
+
+    Examples
+    --------
+    >>> as_code({5, 1}, bits=8).to_indices()[0].tolist()
+    [1, 5]
+    """
     from bitarray import bitarray
 
     if isinstance(obj, Codes):

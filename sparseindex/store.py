@@ -152,7 +152,13 @@ class BatchHits:
 
     @property
     def counts(self) -> np.ndarray:
-        """Number of hits of each query."""
+        """Number of hits of each query.
+
+        Examples
+        --------
+        >>> BatchHits(np.array([0, 2, 2]), np.array([3, 5]), np.array([8, 6])).counts.tolist()
+        [2, 0]
+        """
         return np.diff(self.indptr)
 
     def __repr__(self) -> str:
@@ -203,6 +209,14 @@ class Store:
     [0]
     >>> store.query([10, 11, 12, 1]).overlaps.tolist()
     [3]
+
+    Parameters, counts and memory are read-only properties:
+
+    >>> s = Store(64, threshold=2, segment=3, detectors=2, seed=5); _ = s.add([[1, 2, 3, 4]])
+    >>> s.bits, s.threshold, s.segment, s.detectors, s.seed, s.plan, s.read_only
+    (64, 2, 3, 2, 5, None, False)
+    >>> s.next_id, s.removed_count, s.postings_count, s.nbytes > 0
+    (1, 0, 6, True)
     """
 
     #: Detectors per postings block; tests lower it to exercise many blocks.
@@ -731,6 +745,14 @@ class Store:
 
         Ids do not change. O(stored codes + postings); queries go on
         meanwhile against the old arrays, and see the new ones at once.
+
+        Examples
+        --------
+        >>> s = Store(bits=16, threshold=1, seed=0); _ = s.add([[1], [2], [3]])
+        >>> s.remove([1]); s.removed_count
+        1
+        >>> s.compact(); s.removed_count, s.ids().tolist(), s.next_id
+        (0, [0, 2], 3)
         """
         with self._mutating("compact"):
             live = ~self._removed[: self._rows]
@@ -883,7 +905,14 @@ class Store:
         raise TypeError("a Store is not iterable; use store.ids() and store.get(ids)")
 
     def ids(self) -> np.ndarray:
-        """Ids of every stored (not removed) code, ascending."""
+        """Ids of every stored (not removed) code, ascending.
+
+        Examples
+        --------
+        >>> s = Store(bits=16, threshold=1, seed=0); _ = s.add([[1], [2]]); s.remove([0])
+        >>> s.ids().tolist()
+        [1]
+        """
         with self._rw.reading():
             rows = np.flatnonzero(~self._removed[: self._rows])
             return self._ids_of_rows(rows)
