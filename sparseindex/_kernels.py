@@ -459,13 +459,8 @@ def _fired_rows(fired, n_fired, detectors):
 
 
 @inline_kernel
-def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap, fired):
-    """Rows hit by one query with their overlaps; a larger ``fired`` if needed."""
-    n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
-    if n_fired > fired.shape[0]:
-        fired = np.empty(2 * n_fired, dtype=np.int64)
-        n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
-    rows = _fired_rows(fired, n_fired, detectors)
+def _verified(rows, removed, words, q_words, min_overlap):
+    """The live ``rows`` whose exact overlap with the query is >= min_overlap, with it."""
     out_rows = np.empty(rows.shape[0], dtype=np.int64)
     out_ov = np.empty(rows.shape[0], dtype=np.int64)
     n = 0
@@ -478,7 +473,18 @@ def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, t
             out_rows[n] = r
             out_ov[n] = ov
             n += 1
-    return out_rows[:n], out_ov[:n], fired
+    return out_rows[:n], out_ov[:n]
+
+
+@inline_kernel
+def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap, fired):
+    """Rows hit by one query with their overlaps; a larger ``fired`` if needed."""
+    n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
+    if n_fired > fired.shape[0]:
+        fired = np.empty(2 * n_fired, dtype=np.int64)
+        n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
+    rows, overlaps = _verified(_fired_rows(fired, n_fired, detectors), removed, words, q_words, min_overlap)
+    return rows, overlaps, fired
 
 
 @kernel
@@ -528,20 +534,7 @@ def answer_from_fired(fired, counts, room, detectors, removed, words, q_words, m
         for i in range(counts[c]):
             gathered[n] = fired[c * room + i]
             n += 1
-    rows = _fired_rows(gathered, n, detectors)
-    out_rows = np.empty(rows.shape[0], dtype=np.int64)
-    out_ov = np.empty(rows.shape[0], dtype=np.int64)
-    m = 0
-    for i in range(rows.shape[0]):
-        r = rows[i]
-        if removed[r]:
-            continue
-        ov = _row_overlap(words[r], q_words)
-        if ov >= min_overlap:
-            out_rows[m] = r
-            out_ov[m] = ov
-            m += 1
-    return out_rows[:m], out_ov[:m]
+    return _verified(_fired_rows(gathered, n, detectors), removed, words, q_words, min_overlap)
 
 
 @parallel_kernel
