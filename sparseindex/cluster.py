@@ -60,7 +60,7 @@ from .codes import Codes, as_code, as_codes
 from .errors import CapacityWarning, ReadOnlyStoreError, StoreFormatError
 from .health import Health, ProbeResult
 from .planner import Plan, plan as make_plan
-from .store import BatchHits, Hits, Store
+from .store import BatchHits, Hits, Store, ids_below
 from .store import _check_chance as _chance
 from .store import _check_fraction as _fraction
 from .store import _check_new_ids as _new_ids
@@ -701,18 +701,7 @@ class ShardedStore:
 
     def _ids_arg(self, ids, what: str) -> np.ndarray:
         """Validated 1-D int64 ids, every one below ``next_id``; the messages of ``Store``."""
-        arr = np.asarray(ids)
-        if arr.ndim > 1:
-            raise ValueError(f"{what}: ids must be an integer or a 1-D sequence, got shape {arr.shape}")
-        arr = arr.reshape(-1)
-        if arr.size and (arr.dtype == np.bool_ or arr.dtype.kind not in "iu"):
-            bad = next((x for x in arr.tolist() if isinstance(x, bool) or not isinstance(x, int)), arr.tolist()[0])
-            raise TypeError(f"{what}: id {bad!r} is not an integer")
-        arr = arr.astype(np.int64)
-        never = np.flatnonzero((arr < 0) | (arr >= self._next_id))
-        if never.size:
-            raise KeyError(f"{what}: id {int(arr[never[0]])} was never stored (ids so far: 0..{self._next_id - 1})")
-        return arr
+        return ids_below(ids, self._next_id, what)
 
     def _live_codes(self, arr: np.ndarray, what: str):
         """Codes of ``arr`` in order; KeyError naming the first id that is not live."""

@@ -37,6 +37,35 @@ def _check_int(name: str, value, minimum: int) -> int:
     return int(value)
 
 
+def ids_below(ids, next_id: int, what: str) -> np.ndarray:
+    """Validated 1-D int64 ids (an int or a 1-D sequence), each in ``0..next_id-1``.
+
+    ``TypeError`` for a non-integer id, ``KeyError`` naming the first id
+    that was never handed out. Shared by every store that hands out ids.
+
+    Examples
+    --------
+    >>> ids_below([2, 0], 3, "get").tolist()
+    [2, 0]
+    >>> ids_below(5, 3, "get")
+    Traceback (most recent call last):
+    ...
+    KeyError: 'get: id 5 was never stored (ids so far: 0..2)'
+    """
+    arr = np.asarray(ids)
+    if arr.ndim > 1:
+        raise ValueError(f"{what}: ids must be an integer or a 1-D sequence, got shape {arr.shape}")
+    arr = arr.reshape(-1)
+    if arr.size and (arr.dtype == np.bool_ or arr.dtype.kind not in "iu"):
+        bad = next((x for x in arr.tolist() if isinstance(x, bool) or not isinstance(x, int)), arr.tolist()[0])
+        raise TypeError(f"{what}: id {bad!r} is not an integer")
+    arr = arr.astype(np.int64)
+    never = np.flatnonzero((arr < 0) | (arr >= next_id))
+    if never.size:
+        raise KeyError(f"{what}: id {int(arr[never[0]])} was never stored (ids so far: 0..{next_id - 1})")
+    return arr
+
+
 def _check_new_ids(ids, m: int) -> np.ndarray:
     arr = np.asarray(ids)
     if arr.ndim != 1 or arr.shape[0] != m:
@@ -394,19 +423,7 @@ class Store:
 
     def _live_rows_of(self, ids, what: str) -> np.ndarray:
         """Rows of ``ids`` (int or 1-D int array-like); KeyError for any not stored."""
-        arr = np.asarray(ids)
-        if arr.ndim > 1:
-            raise ValueError(f"{what}: ids must be an integer or a 1-D sequence, got shape {arr.shape}")
-        arr = arr.reshape(-1)
-        if arr.size and (arr.dtype == np.bool_ or arr.dtype.kind not in "iu"):
-            bad = next((x for x in arr.tolist() if isinstance(x, bool) or not isinstance(x, int)), arr.tolist()[0])
-            raise TypeError(f"{what}: id {bad!r} is not an integer")
-        arr = arr.astype(np.int64)
-        never = np.flatnonzero((arr < 0) | (arr >= self._next_id))
-        if never.size:
-            raise KeyError(
-                f"{what}: id {int(arr[never[0]])} was never stored (ids so far: 0..{self._next_id - 1})"
-            )
+        arr = ids_below(ids, self._next_id, what)
         if self._row_ids is None:
             rows = arr.copy()
             gone = np.zeros(arr.shape[0], dtype=bool)
