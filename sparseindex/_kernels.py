@@ -348,6 +348,22 @@ def _build_chunk(words, code_ids, r0, r1, first_row, detectors, segment, seed, b
     return max_sample
 
 
+@kernel
+def build_blocks_serial(words, code_ids, first_row, detectors, segment, seed, bits, block_span, chunk_rows,
+                        post, post_starts, block_indptr, block_lo, block_hi, block_starts, usage, weight_hist,
+                        count_usage):
+    """:func:`build_blocks_parallel` on the calling thread (one chunk: no parallel start-up cost)."""
+    n_chunks = chunk_rows.shape[0] - 1
+    biggest = np.zeros(n_chunks, dtype=np.int64)
+    for c in range(n_chunks):
+        biggest[c] = _build_chunk(
+            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, segment, seed, bits,
+            block_span, post, post_starts[c], block_indptr, block_lo, block_hi, block_starts[c], usage[c],
+            weight_hist[c], count_usage,
+        )
+    return biggest
+
+
 @parallel_kernel
 def build_blocks_parallel(words, code_ids, first_row, detectors, segment, seed, bits, block_span, chunk_rows,
                           post, post_starts, block_indptr, block_lo, block_hi, block_starts, usage, weight_hist,

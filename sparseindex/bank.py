@@ -146,12 +146,14 @@ class DetectorBank:
         weight_hist = np.zeros((chunk_rows.shape[0] - 1, self.bits + 1), dtype=np.int64)
         max_sample = self._max_sample
         if rows:
-            with PARALLEL_LOCK:
-                biggest = _kernels.build_blocks_parallel(
-                    words, code_ids, self.rows, self.detectors, segment, np.uint64(self.seed), self.bits,
+            args = (words, code_ids, self.rows, self.detectors, segment, np.uint64(self.seed), self.bits,
                     self.block_span, chunk_rows, buffer, post_starts, new_indptr, new_lo, new_hi, block_starts,
-                    usage, weight_hist, count_usage,
-                )
+                    usage, weight_hist, count_usage)
+            if chunk_rows.shape[0] > 2:
+                with PARALLEL_LOCK:
+                    biggest = _kernels.build_blocks_parallel(*args)
+            else:  # one chunk: starting the thread team would cost more than the work
+                biggest = _kernels.build_blocks_serial(*args)
             max_sample = max(max_sample, int(biggest.max()))
         block_indptr = np.concatenate([self._block_indptr, new_indptr])
         block_lo = np.concatenate([self._block_lo, new_lo])

@@ -536,9 +536,23 @@ class _Watch:
         self.warn_fraction = warn_fraction
         self.false_hit = false_hit
         self.status = None
+        self._capacity = None  # from the last full report, valid until the model refreshes
+        self._churn_at = 0
+        self._items_at = 0
 
-    def changed(self, store) -> None:
-        health = compute(store)
+    def changed(self, store, refresh_fraction=0.05) -> None:
+        # Fast path for streams of small adds: the capacity only moves when
+        # the usage-aware estimate refreshes, so until then the status is
+        # items against the last capacity; a full report only on a change.
+        items = len(store)
+        churn = _churn(store)
+        fresh = abs(churn - self._churn_at) < max(1, refresh_fraction * max(items, self._items_at))
+        if self._capacity is not None and fresh and classify(items, self._capacity, self.warn_fraction) == self.status:
+            return
+        health = compute(store, refresh_fraction=refresh_fraction)
+        if not fresh or self._capacity is None:
+            self._churn_at, self._items_at = churn, items
+        self._capacity = health.capacity
         previous, current = self.status, health.status
         self.status = current
         if previous is None or previous == current:
