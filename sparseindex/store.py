@@ -1137,6 +1137,12 @@ class Store:
         store._rows, store._next_id, store._removed_count = state.rows, state.next_id, state.removed_count
         store._plan = state.plan
         store._usage = None  # counted on first use (health), not at load
+        if state.plan is not None:
+            # a planned store warns past capacity, as for_target's does; the
+            # level is first taken at the first change (not at load: O(N))
+            from .health import _Watch
+
+            store._watch = _Watch(None, 0.8, None)
         return store
 
     # -- invariants -------------------------------------------------------

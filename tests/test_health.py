@@ -243,3 +243,14 @@ def test_health_and_probe_argument_errors():
         store.watch(3, false_hit=0.1)
     assert store.health().status == "unknown" and store.health().capacity is None
     assert model.capacity(store.health(false_hit=0.1).per_code_uniform, 0.1) == store.health(false_hit=0.1).capacity
+
+
+def test_a_loaded_planned_store_still_warns_past_capacity(tmp_path):
+    store = Store.for_target(256, 8, false_hit=0.05, capacity=400, seed=12)
+    cap = store.health().capacity_uniform
+    store.add(Codes.random(int(cap * 0.9), 256, 8, seed=12))
+    store.save(tmp_path / "planned")
+    loaded = Store.load(tmp_path / "planned")
+    loaded.add(Codes.random(1, 256, 8, seed=13))  # first change: the level is taken here
+    with pytest.warns(CapacityWarning, match="past its capacity"):
+        loaded.add(Codes.random(int(cap * 0.3), 256, 8, seed=14))
