@@ -999,65 +999,19 @@ class ShardedStore:
         target = self._target(false_hit)
         watch, plan = self._watch, self._plan
         warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
-        live = int(hist.sum())
-        w_min = w_mean = w_max = None
-        if live:
-            used = np.flatnonzero(hist)
-            w_min, w_mean, w_max = int(used[0]), float((np.arange(hist.shape[0]) * hist).sum() / live), int(used[-1])
-        q = self._nominal(w_mean)
+        q = self._nominal(_health._weights(hist)[1])
         per_uniform = cap_uniform = None
         if q is not None:
             per_uniform, cap_uniform = self._uniform(q, target)
         est = self._usage_estimate(q, usage, items, refresh)
-        per_usage = se_usage = cap_usage = lam = since = None
-        sampled = 0
-        if est is not None:
-            since, (e, lam) = est
-            per_usage, se_usage, sampled = e.per_code, e.per_code_stderr, e.codes_sampled
-            if target is not None:
-                cap_usage = model.capacity(min(1.0, per_usage), target) if per_usage > 0 else math.inf
-        basis, per_op, cap = "uniform", per_uniform, cap_uniform
-        if (per_usage is not None and per_uniform is not None
-                and per_usage - _health.USAGE_SIGMAS * (se_usage or 0.0) > per_uniform
-                and per_usage > (1 + _health.USAGE_MARGIN) * per_uniform):
-            basis, per_op, cap = "usage", per_usage, cap_usage
-        status, headroom, headroom_frac, fill = _health.UNKNOWN, None, None, None
-        if target is not None and items == 0:
-            status = "healthy"
-        if cap is not None:
-            status = _health.classify(items, cap, warn)
-            headroom = max(0.0, float(cap) - items) if math.isfinite(cap) else math.inf
-            headroom_frac = headroom / cap if cap and math.isfinite(cap) else (1.0 if cap else 0.0)
-            fill = items / cap if cap and math.isfinite(cap) else (0.0 if cap else math.inf)
-        now_u = None if per_uniform is None else float(model.store_false_hit(per_uniform, items))
-        now_s = None if per_usage is None else float(model.store_false_hit(min(1.0, per_usage), items))
-        at_cap = None
-        if cap is not None and math.isfinite(cap):
-            at_cap = float(model.store_false_hit(min(1.0, per_op), int(cap)))
-        total = float(usage.sum())
         with self._served_lock:
             served = dict(self._served)
-        return Health(
-            status=status, items=items, removed_pending=int(sum(s["removed"] for s in stats)), bits=self.bits,
-            threshold=self.threshold, segment=self.segment, detectors=self.detectors, query_active=q,
-            planned_active=None if plan is None else int(plan.active), target_false_hit=target,
-            target_capacity=None if plan is None else int(plan.target_capacity),
-            target_noise=None if plan is None else float(plan.noise),
-            target_recall=None if plan is None else float(plan.target_recall),
-            warn_fraction=float(warn), capacity=cap, capacity_basis=basis, capacity_uniform=cap_uniform,
-            capacity_usage=cap_usage, headroom_codes=headroom, headroom_fraction=headroom_frac, fill_fraction=fill,
-            false_hit_now=now_s if basis == "usage" else now_u, false_hit_now_uniform=now_u,
-            false_hit_now_usage=now_s, false_hit_at_capacity=at_cap, per_code_uniform=per_uniform,
-            per_code_usage=per_usage, per_code_usage_stderr=se_usage, usage_codes_sampled=sampled,
-            usage_changes_since=since, usage_shrinkage=lam,
-            effective_bits=None if total == 0 else total * total / float((usage.astype(np.float64) ** 2).sum()),
-            hottest_bit_load_ratio=None if total == 0 else float(usage.max()) / (total / self.bits),
-            unused_bits=int(self.bits - np.count_nonzero(usage)),
-            weight_min=w_min, weight_mean=w_mean, weight_max=w_max,
-            weight_offset=None if (plan is None or w_mean is None) else w_mean - plan.active,
-            probe=self._probe, queries_total=served["queries"], hits_total=served["hits"],
-            codes_added_total=served["added"], codes_removed_total=served["removed"],
-            memory_bytes=int(sum(s["nbytes"] for s in stats)), seconds=time.perf_counter() - started,
+        return _health.derive(
+            bits=self.bits, threshold=self.threshold, segment=self.segment, detectors=self.detectors, plan=plan,
+            target=target, warn=warn, usage=usage, hist=hist, items=items,
+            removed_pending=int(sum(s["removed"] for s in stats)), q=q, per_uniform=per_uniform,
+            cap_uniform=cap_uniform, estimate=est, probe=self._probe, served=served,
+            memory=int(sum(s["nbytes"] for s in stats)), started=started,
         )
 
     def probe(self, queries=10_000, *, source="uniform", seed=None, batch=2048) -> ProbeResult:

@@ -384,16 +384,33 @@ def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh
         if target is None and plan is not None:
             target = plan.target_false_hit
         warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
-        w_min, w_mean, w_max = _weights(hist)
-        q = _nominal_active(store, w_mean)
+        q = _nominal_active(store, _weights(hist)[1])
         per_uniform = cap_uniform = None
         if q is not None:
             per_uniform, cap_uniform = _uniform(store, q, target)
         est = _usage_estimate(store, q, usage, items, refresh_fraction, refresh)
+    return derive(
+        bits=store.bits, threshold=store.threshold, segment=store.segment, detectors=store.detectors, plan=plan,
+        target=target, warn=warn, usage=usage, hist=hist, items=items, removed_pending=removed_pending, q=q,
+        per_uniform=per_uniform, cap_uniform=cap_uniform, estimate=est, probe=store._probe, served=served,
+        memory=memory, started=started,
+    )
+
+
+def derive(*, bits, threshold, segment, detectors, plan, target, warn, usage, hist, items, removed_pending, q,
+           per_uniform, cap_uniform, estimate, probe, served, memory, started) -> Health:
+    """A :class:`Health` from gathered inputs; one store or many shards alike.
+
+    ``usage`` and ``hist`` are the live codes' per-bit counts and weight
+    histogram, ``per_uniform``/``cap_uniform`` the uniform model's figures
+    for query weight ``q``, ``estimate`` None or ``(changes since,
+    (UsageFalseHits, shrinkage))``.
+    """
+    w_min, w_mean, w_max = _weights(hist)
     per_usage = se_usage = cap_usage = None
     sampled, since, lam = 0, None, None
-    if est is not None:
-        since, (e, lam) = est
+    if estimate is not None:
+        since, (e, lam) = estimate
         per_usage, se_usage, sampled = e.per_code, e.per_code_stderr, e.codes_sampled
         if target is not None:
             cap_usage = model.capacity(min(1.0, per_usage), target) if per_usage > 0 else math.inf
@@ -416,11 +433,10 @@ def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh
     at_cap = None
     if cap is not None and math.isfinite(cap):
         at_cap = float(model.store_false_hit(min(1.0, per_op), int(cap)))
-    nonzero = usage[usage > 0]
     total = float(usage.sum())
     return Health(
-        status=status, items=items, removed_pending=removed_pending, bits=store.bits,
-        threshold=store.threshold, segment=store.segment, detectors=store.detectors, query_active=q,
+        status=status, items=items, removed_pending=removed_pending, bits=bits,
+        threshold=threshold, segment=segment, detectors=detectors, query_active=q,
         planned_active=None if plan is None else int(plan.active),
         target_false_hit=target, target_capacity=None if plan is None else int(plan.target_capacity),
         target_noise=None if plan is None else float(plan.noise),
@@ -433,11 +449,11 @@ def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh
         usage_changes_since=since, usage_shrinkage=lam,
         # Hill's effective number of order 2 (inverse Simpson): (sum u)^2 / sum u^2
         effective_bits=None if total == 0 else total * total / float((usage.astype(np.float64) ** 2).sum()),
-        hottest_bit_load_ratio=None if total == 0 else float(usage.max()) / (total / store.bits),
-        unused_bits=int(store.bits - nonzero.shape[0]),
+        hottest_bit_load_ratio=None if total == 0 else float(usage.max()) / (total / bits),
+        unused_bits=int(bits - np.count_nonzero(usage)),
         weight_min=w_min, weight_mean=w_mean, weight_max=w_max,
         weight_offset=None if (plan is None or w_mean is None) else w_mean - plan.active,
-        probe=store._probe, queries_total=served["queries"], hits_total=served["hits"],
+        probe=probe, queries_total=served["queries"], hits_total=served["hits"],
         codes_added_total=served["added"], codes_removed_total=served["removed"], memory_bytes=memory,
         seconds=time.perf_counter() - started,
     )
