@@ -478,7 +478,6 @@ class ShardedStore:
         self._served_lock = threading.Lock()
         self._probe = None
         self._watch = None
-        self._memo_uniform = {}
         self._memo_usage = None
         self._closed = False
         self._read_only = None  # or why, for a store loaded read-only
@@ -950,22 +949,6 @@ class ShardedStore:
             return self._watch.false_hit
         return None if self._plan is None else self._plan.target_false_hit
 
-    def _nominal(self, mean_weight):
-        if self._plan is not None:
-            return int(self._plan.active)
-        if mean_weight is None:
-            return None
-        return min(self.bits, max(self.threshold, int(round(mean_weight))))
-
-    def _uniform(self, q, target):
-        key = (q, target)
-        if key not in self._memo_uniform:
-            segment = q if self.segment is None else min(self.segment, q)
-            per_code = float(model.false_hit_per_code(self.bits, q, segment, min(self.threshold, segment),
-                                                      self.detectors, q))
-            self._memo_uniform[key] = (per_code, None if target is None else model.capacity(per_code, target))
-        return self._memo_uniform[key]
-
     def _usage_estimate(self, q, usage, items, force, refresh_fraction=0.05):
         """The usage-aware estimate over the whole store, memoised like ``Store.health``'s."""
         if items == 0 or q is None or usage.sum() < _health.USAGE_MIN_COUNT * self.bits:
@@ -999,10 +982,10 @@ class ShardedStore:
         target = self._target(false_hit)
         watch, plan = self._watch, self._plan
         warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
-        q = self._nominal(_health._weights(hist)[1])
+        q = _health._nominal_active(self, _health._weights(hist)[1])
         per_uniform = cap_uniform = None
         if q is not None:
-            per_uniform, cap_uniform = self._uniform(q, target)
+            per_uniform, cap_uniform = _health._uniform(self, q, target)
         est = self._usage_estimate(q, usage, items, refresh)
         with self._served_lock:
             served = dict(self._served)

@@ -281,6 +281,10 @@ def _weights(hist: np.ndarray):
 
 
 def _nominal_active(store, mean_weight):
+    """Query weight the models assume: the plan's ``active``, else the mean stored weight.
+
+    ``store`` is a Store or a ShardedStore (anything with ``plan``, ``bits``, ``threshold``).
+    """
     if store.plan is not None:
         return int(store.plan.active)
     if mean_weight is None:
