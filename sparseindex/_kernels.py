@@ -420,13 +420,22 @@ def merge_blocks(post, block_indptr, block_lo, first_block, last_block, out_offs
 
 
 @inline_kernel
+def _fire(fired, base, room, n_fired, detector):
+    if n_fired < room:
+        fired[base + n_fired] = detector
+    return n_fired + 1
+
+
+@inline_kernel
 def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters, threshold, fired, base, room):
     """Count each detector's sampled bits present in the query, blocks k0..k1-1.
 
     A block's counters (at most ``block_span`` of them) stay in cache while
     its postings stream past; while a bit's run is counted, the same bit's
     run in the next block is prefetched (runs are short and start far apart,
-    so the hardware prefetcher alone leaves the reads latency-bound). A
+    so the hardware prefetcher alone leaves the reads latency-bound). Two
+    postings are counted per step (a run's offsets are distinct, so the two
+    increments never collide), in the counters' own integer type. A
     detector is recorded the moment its counter reaches ``threshold``, so it
     appears once. At most ``room`` are recorded, at ``fired[base:]``; the
     true count is returned so that the caller can retry with room for all.
@@ -434,6 +443,8 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
     """
     n_fired = 0
     n_q = q_bits.shape[0]
+    one = counters.dtype.type(1)
+    thr = counters.dtype.type(threshold)
     for k in range(k0, k1):
         lo = block_lo[k]
         for t in range(n_q):
@@ -441,14 +452,27 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
             if k + 1 < k1:  # the same bit's run in the next block, one hint per cache line
                 for x in range(block_indptr[k + 1, b], block_indptr[k + 1, b + 1], 32):
                     prefetch(post, x)
-            for p in range(block_indptr[k, b], block_indptr[k, b + 1]):
+            p = block_indptr[k, b]
+            end = block_indptr[k, b + 1]
+            while p + 1 < end:
+                d0 = post[p]
+                d1 = post[p + 1]
+                c0 = counters[d0] + one
+                c1 = counters[d1] + one
+                counters[d0] = c0
+                counters[d1] = c1
+                if c0 == thr or c1 == thr:
+                    if c0 == thr:
+                        n_fired = _fire(fired, base, room, n_fired, lo + d0)
+                    if c1 == thr:
+                        n_fired = _fire(fired, base, room, n_fired, lo + d1)
+                p += 2
+            if p < end:
                 d = post[p]
-                c = counters[d] + 1
+                c = counters[d] + one
                 counters[d] = c
-                if c == threshold:
-                    if n_fired < room:
-                        fired[base + n_fired] = lo + d
-                    n_fired += 1
+                if c == thr:
+                    n_fired = _fire(fired, base, room, n_fired, lo + d)
         counters[: block_hi[k] - lo] = 0
     return n_fired
 
@@ -493,64 +517,135 @@ def _verified(rows, removed, words, q_words, min_overlap):
 
 
 @inline_kernel
-def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap, fired):
-    """Rows hit by one query with their overlaps; a larger ``fired`` if needed."""
-    n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
+def _prefix_plan(q_bits, bit_postings, n_detectors, threshold, whole, verify_cost):
+    """The query bits to scan, and the count that makes a detector a candidate.
+
+    Prefix filtering (Chaudhuri, Ganti & Kaushik, "A primitive operator for
+    similarity joins in data cleaning", ICDE 2006): a detector that meets
+    ``threshold`` of the query's q bits meets ``threshold - (q - m)`` of any
+    m of them. When every detector samples its whole code (``whole``), a
+    detector fires exactly when its code's overlap reaches ``threshold``, so
+    the scan may skip the q - m bits with the longest postings, record the
+    detectors that reach the lowered count, and leave the rest to the exact
+    overlap check that every hit gets anyway — the answer is unchanged.
+
+    m is chosen to minimise postings read plus ``verify_cost`` (one
+    candidate's check, in postings) times the expected candidates, taken
+    from the per-bit posting frequencies as a Poisson-binomial tail (bits
+    independent; a cost guess only, never a correctness one). Returns
+    ``(scan_bits, scan_threshold)``: scan_bits ascending. Not ``whole``, or
+    ``verify_cost`` infinite: all of q_bits at ``threshold``.
+    """
+    n_q = q_bits.shape[0]
+    if not whole or n_detectors == 0 or verify_cost == np.inf:
+        return q_bits, threshold
+    lengths = np.empty(n_q, dtype=np.int64)
+    for t in range(n_q):
+        lengths[t] = bit_postings[q_bits[t]]
+    order = np.argsort(lengths, kind="mergesort")
+    dist = np.zeros(threshold + 1)  # P(count = c) over the bits taken so far; the last cell is ">= threshold"
+    dist[0] = 1.0
+    best_m = n_q
+    best_cost = np.inf
+    scanned = 0.0
+    for m in range(n_q + 1):
+        if m > 0:
+            length = lengths[order[m - 1]]
+            p = min(1.0, length / n_detectors)
+            dist[threshold] += dist[threshold - 1] * p
+            for c in range(threshold - 1, 0, -1):
+                dist[c] = dist[c] * (1.0 - p) + dist[c - 1] * p
+            dist[0] *= 1.0 - p
+            scanned += length
+        need = threshold - (n_q - m)
+        if need < 1:
+            continue
+        tail = 0.0
+        for c in range(need, threshold + 1):
+            tail += dist[c]
+        cost = scanned + (verify_cost * n_detectors * tail if tail > 0.0 else 0.0)
+        if cost < best_cost:
+            best_cost = cost
+            best_m = m
+    chosen = np.sort(q_bits[order[:best_m]])
+    return chosen, threshold - (n_q - best_m)
+
+
+@inline_kernel
+def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
+            min_overlap, fired, bit_postings, whole, verify_cost):
+    """Rows hit by one query with their overlaps; a larger ``fired`` if needed.
+
+    The scan follows :func:`_prefix_plan`; for whole-code detectors the
+    exact check also demands ``threshold`` (firing is then overlap >= it).
+    """
+    n_det = block_hi[block_hi.shape[0] - 1] if block_hi.shape[0] else 0
+    scan_bits, scan_threshold = _prefix_plan(q_bits, bit_postings, n_det, threshold, whole, verify_cost)
+    n_fired = _scan_count(scan_bits, post, block_indptr, block_lo, block_hi, counters, scan_threshold, fired)
     if n_fired > fired.shape[0]:
         fired = np.empty(2 * n_fired, dtype=np.int64)
-        n_fired = _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired)
-    rows, overlaps = _verified(_fired_rows(fired, n_fired, detectors), removed, words, q_words, min_overlap)
+        n_fired = _scan_count(scan_bits, post, block_indptr, block_lo, block_hi, counters, scan_threshold, fired)
+    need = max(min_overlap, threshold) if whole else min_overlap
+    rows, overlaps = _verified(_fired_rows(fired, n_fired, detectors), removed, words, q_words, need)
     return rows, overlaps, fired
 
 
 @kernel
-def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap):
+def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
+              min_overlap, bit_postings, whole, verify_cost):
     """One query: rows with a firing detector and overlap >= min_overlap.
 
     ``counters`` (at least one block span long) must be zero on entry and
-    are zero again on exit. Returns ``(rows, overlaps)``, rows ascending.
+    are zero again on exit. ``bit_postings`` holds each bit's postings over
+    all blocks; ``whole`` says every detector samples its whole code (see
+    :func:`_prefix_plan`). Returns ``(rows, overlaps)``, rows ascending.
     """
     fired = np.empty(256, dtype=np.int64)
     rows, overlaps, fired = _answer(
-        q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words, min_overlap, fired
+        q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
+        min_overlap, fired, bit_postings, whole, verify_cost,
     )
     return rows, overlaps
 
 
 @parallel_kernel
-def scan_blocks_parallel(q_bits, post, block_indptr, block_lo, block_hi, counter_like, threshold, chunk_lo, chunk_hi,
-                         fired, room):
-    """One query's scan with the blocks split into chunks run in parallel.
+def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, counter_like, threshold, detectors,
+                       removed, words, min_overlap, bit_postings, whole, verify_cost, n_chunks):
+    """:func:`query_one` with the blocks split into ``n_chunks`` chunks scanned in parallel.
 
-    Chunk ``c`` scans blocks ``chunk_lo[c]..chunk_hi[c]-1`` with its own
-    counters and records at most ``room`` fired detectors at ``fired[c *
-    room:]``. Returns each chunk's true count (retry with more room if one
-    exceeds it).
+    Each chunk has its own counters (shaped and typed like
+    ``counter_like``) and room for its fired detectors; a chunk that runs
+    out of room is rescanned with room for all. One call does the plan, the
+    scans and the exact check, so a query pays one dispatch.
     """
-    n_chunks = chunk_lo.shape[0]
+    n_blocks = block_lo.shape[0]
+    n_det = block_hi[n_blocks - 1] if n_blocks else 0
+    scan_bits, scan_threshold = _prefix_plan(q_bits, bit_postings, n_det, threshold, whole, verify_cost)
+    chunk_lo = np.empty(n_chunks, dtype=np.int64)
+    for c in range(n_chunks):
+        chunk_lo[c] = c * n_blocks // n_chunks
+    room = 1024
     counts = np.zeros(n_chunks, dtype=np.int64)
-    for c in prange(n_chunks):
-        counters = np.zeros(counter_like.shape[0], dtype=counter_like.dtype)
-        counts[c] = _scan_range(
-            q_bits, post, block_indptr, block_lo, block_hi, chunk_lo[c], chunk_hi[c], counters, threshold, fired,
-            c * room, room,
-        )
-    return counts
-
-
-@kernel
-def answer_from_fired(fired, counts, room, detectors, removed, words, q_words, min_overlap):
-    """Rows (ascending) and overlaps of a scan recorded by ``scan_blocks_parallel``."""
-    total = 0
-    for c in range(counts.shape[0]):
-        total += counts[c]
-    gathered = np.empty(total, dtype=np.int64)
+    fired = np.empty(n_chunks * room, dtype=np.int64)
+    again = True
+    while again:
+        for c in prange(n_chunks):
+            hi = (c + 1) * n_blocks // n_chunks
+            counters = np.zeros(counter_like.shape[0], dtype=counter_like.dtype)
+            counts[c] = _scan_range(scan_bits, post, block_indptr, block_lo, block_hi, chunk_lo[c], hi, counters,
+                                    scan_threshold, fired, c * room, room)
+        again = counts.max() > room
+        if again:
+            room = counts.max()
+            fired = np.empty(n_chunks * room, dtype=np.int64)
+    gathered = np.empty(counts.sum(), dtype=np.int64)
     n = 0
-    for c in range(counts.shape[0]):
+    for c in range(n_chunks):
         for i in range(counts[c]):
             gathered[n] = fired[c * room + i]
             n += 1
-    return _verified(_fired_rows(gathered, n, detectors), removed, words, q_words, min_overlap)
+    need = max(min_overlap, threshold) if whole else min_overlap
+    return _verified(_fired_rows(gathered, n, detectors), removed, words, q_words, need)
 
 
 @parallel_kernel
@@ -575,6 +670,9 @@ def query_batch(
     out_rows,
     out_ov,
     out_count,
+    bit_postings,
+    whole,
+    verify_cost,
 ):
     """Many queries in parallel, one chunk of queries per task.
 
@@ -583,7 +681,8 @@ def query_batch(
     ``out_count[i]`` hits for query ``i``. A chunk whose slab fills up stops
     early; the returned ``done[c]`` is the first query it did not answer, so
     the caller can resume it with a larger slab. Each task owns a counter
-    array shaped and typed like ``counter_like``.
+    array shaped and typed like ``counter_like``. Each query's scan follows
+    :func:`_prefix_plan`, as in :func:`query_one`.
     """
     n_chunks = chunk_lo.shape[0]
     done = np.empty(n_chunks, dtype=np.int64)
@@ -607,6 +706,9 @@ def query_batch(
                 words,
                 min_overlap,
                 fired,
+                bit_postings,
+                whole,
+                verify_cost,
             )
             n = rows.shape[0]
             if pos + n > slab_hi[c]:

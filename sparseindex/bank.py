@@ -39,6 +39,12 @@ PARALLEL_MIN_BLOCKS = 2
 #: Codes sampled per kernel call in ``append`` (bounds the temporaries).
 APPEND_CHUNK_ROWS = 2**18
 
+#: What checking one candidate costs (reading its code, AND + popcount,
+#: sorting it among the fired), in postings scanned; it sets how far a
+#: query's scan may lower its threshold (kernel ``_prefix_plan``). Measured
+#: by ``benchmarks/bench_prefix.py``.
+VERIFY_COST_POSTINGS = 256.0
+
 
 class DetectorBank:
     """Postings of every detector of every row, and the scans over them.
@@ -79,6 +85,10 @@ class DetectorBank:
         self._block_lo = np.zeros(0, dtype=np.int64)
         self._block_hi = np.zeros(0, dtype=np.int64)
         self._max_sample = 0  # largest sample of any detector (sizes the counters)
+        self._max_weight = 0  # heaviest code ever appended (says whether samples are whole codes)
+        self._bit_postings = np.zeros(bits, dtype=np.int64)  # postings of each bit over all blocks
+        #: cost of a candidate check in postings (``float("inf")``: never lower the scan threshold)
+        self.verify_cost = VERIFY_COST_POSTINGS
 
     # -- building --------------------------------------------------------
 
@@ -145,6 +155,7 @@ class DetectorBank:
         usage = np.zeros((chunk_rows.shape[0] - 1, self.bits), dtype=np.int64)
         weight_hist = np.zeros((chunk_rows.shape[0] - 1, self.bits + 1), dtype=np.int64)
         max_sample = self._max_sample
+        max_weight = max(self._max_weight, int(weights.max())) if rows else self._max_weight
         if rows:
             args = (words, code_ids, self.rows, self.detectors, segment, np.uint64(self.seed), self.bits,
                     self.block_span, chunk_rows, buffer, post_starts, new_indptr, new_lo, new_hi, block_starts,
@@ -158,8 +169,9 @@ class DetectorBank:
         block_indptr = np.concatenate([self._block_indptr, new_indptr])
         block_lo = np.concatenate([self._block_lo, new_lo])
         block_hi = np.concatenate([self._block_hi, new_hi])
+        bit_postings = self._bit_postings + np.diff(new_indptr, axis=1).sum(axis=0)
         return PendingAppend(self.rows, rows, buffer, block_indptr, block_lo, block_hi, need, max_sample,
-                             usage.sum(axis=0), weight_hist.sum(axis=0))
+                             usage.sum(axis=0), weight_hist.sum(axis=0), max_weight, bit_postings)
 
     def commit_append(self, pending: "PendingAppend") -> None:
         """Make a prepared append visible (hold the store's write lock).
@@ -174,14 +186,16 @@ class DetectorBank:
         self._used = pending.used
         self.rows += pending.rows
         self._max_sample = pending.max_sample
+        self._max_weight, self._bit_postings = pending.max_weight, pending.bit_postings
         self._merge_blocks()
 
     @classmethod
     def from_arrays(cls, bits, threshold, segment, detectors, seed, block_span, *, rows, postings, block_indptr,
-                    block_lo, block_hi, max_sample) -> "DetectorBank":
+                    block_lo, block_hi, max_sample, max_weight) -> "DetectorBank":
         """A bank over arrays that were validated elsewhere (a loaded file).
 
         The arrays are adopted, not copied: they may be memory-mapped.
+        ``max_weight`` is the heaviest stored code's weight.
         """
         bank = cls(bits, threshold, segment, detectors, seed, block_span)
         bank.rows = rows
@@ -189,6 +203,8 @@ class DetectorBank:
         bank._used = postings.shape[0]
         bank._block_indptr, bank._block_lo, bank._block_hi = block_indptr, block_lo, block_hi
         bank._max_sample = max_sample
+        bank._max_weight = max_weight
+        bank._bit_postings = np.diff(block_indptr, axis=1).sum(axis=0) if block_lo.shape[0] else bank._bit_postings
         return bank
 
     def arrays(self):
@@ -242,6 +258,7 @@ class DetectorBank:
     def rebuilt(self, words: np.ndarray, code_ids: np.ndarray) -> "DetectorBank":
         """A new bank holding exactly these rows (used by compaction)."""
         fresh = DetectorBank(self.bits, self.threshold, self.segment, self.detectors, self.seed, self.block_span)
+        fresh.verify_cost = self.verify_cost
         if words.shape[0]:
             fresh.append(words, code_ids)
         return fresh
@@ -262,6 +279,11 @@ class DetectorBank:
         """Bytes held by the postings buffer and block tables."""
         return self._post.nbytes + self._block_indptr.nbytes + self._block_lo.nbytes + self._block_hi.nbytes
 
+    @property
+    def whole_codes(self) -> bool:
+        """Whether every detector samples all of its code's bits (then it fires exactly when overlap >= threshold)."""
+        return self.segment is None or self._max_weight <= self.segment
+
     def counter_dtype(self):
         top = max(self._max_sample, self.threshold)
         return np.uint8 if top < 2**8 else np.uint16 if top < 2**16 else np.int32
@@ -279,10 +301,13 @@ class DetectorBank:
         ``counters`` comes from :meth:`new_counters` and is returned zeroed.
         O(postings of the query's bits + hits * words per code). With more
         than one block and more than one thread, the blocks are split among
-        the threads (kernel ``scan_blocks_parallel``) — unless another
+        the threads (kernel ``query_one_parallel``) — unless another
         thread is in a parallel kernel already, in which case this one scans
         serially rather than wait.
         """
+        args = (q_bits, q_words, self._post, self._block_indptr, self._block_lo, self._block_hi, counters,
+                self.threshold, self.detectors, removed, words, min_overlap, self._bit_postings, self.whole_codes,
+                self.verify_cost)
         threads = thread_count()
         if (
             PARALLEL_SINGLE_QUERY
@@ -291,39 +316,10 @@ class DetectorBank:
             and PARALLEL_LOCK.acquire(blocking=False)
         ):
             try:
-                return self._scan_one_parallel(q_bits, q_words, words, removed, min_overlap, counters, threads)
+                return _kernels.query_one_parallel(*args, min(self.block_count, threads))
             finally:
                 PARALLEL_LOCK.release()
-        return _kernels.query_one(
-            q_bits,
-            q_words,
-            self._post,
-            self._block_indptr,
-            self._block_lo,
-            self._block_hi,
-            counters,
-            self.threshold,
-            self.detectors,
-            removed,
-            words,
-            min_overlap,
-        )
-
-    def _scan_one_parallel(self, q_bits, q_words, words, removed, min_overlap, counters, threads):
-        chunks = min(self.block_count, threads)
-        edges = np.linspace(0, self.block_count, chunks + 1).astype(np.int64)
-        chunk_lo, chunk_hi = edges[:-1].copy(), edges[1:].copy()
-        room = 1024
-        while True:
-            fired = np.empty(room * chunks, dtype=np.int64)
-            counts = _kernels.scan_blocks_parallel(
-                q_bits, self._post, self._block_indptr, self._block_lo, self._block_hi, counters, self.threshold,
-                chunk_lo, chunk_hi, fired, room,
-            )
-            if counts.max() <= room:
-                return _kernels.answer_from_fired(fired, counts, room, self.detectors, removed, words, q_words,
-                                                  min_overlap)
-            room = int(counts.max())
+        return _kernels.query_one(*args)
 
     def scan_many(self, q_indptr, q_bits, q_words, words, removed, min_overlap):
         """Rows hit by each of many queries, in parallel (kernel ``query_batch``).
@@ -372,6 +368,9 @@ class DetectorBank:
                     out_rows,
                     out_ov,
                     counts,
+                    self._bit_postings,
+                    self.whole_codes,
+                    self.verify_cost,
                 )
             pending = []
             for c in range(lo.shape[0]):
@@ -428,8 +427,10 @@ class DetectorBank:
             tail = bi[groups == last]
             limit = 2 + int(np.log2(1 + tail[-1, -1] - tail[0, 0]))
             assert tail.shape[0] <= limit, f"too many blocks in the last span: {state}"
+            assert np.array_equal(self._bit_postings, np.diff(bi, axis=1).sum(axis=0)), f"bit postings stale: {state}"
         else:
             assert self._used == 0 and self.rows == 0, state
+            assert not self._bit_postings.any(), f"bit postings stale: {state}"
         for b in range(self.bits):
             ids = self.postings_of(b)
             assert np.all(np.diff(ids) > 0), f"postings of bit {b} not strictly ascending: {state}"
@@ -446,15 +447,17 @@ class PendingAppend:
     """What :meth:`DetectorBank.prepare_append` computed, waiting for commit."""
 
     __slots__ = ("base_rows", "rows", "buffer", "block_indptr", "block_lo", "block_hi", "used", "max_sample",
-                 "usage", "weight_hist")
+                 "usage", "weight_hist", "max_weight", "bit_postings")
 
     def __init__(self, base_rows, rows, buffer, block_indptr, block_lo, block_hi, used, max_sample, usage,
-                 weight_hist):
+                 weight_hist, max_weight, bit_postings):
         self.base_rows, self.rows, self.buffer = base_rows, rows, buffer
         self.block_indptr, self.block_lo, self.block_hi = block_indptr, block_lo, block_hi
         self.used, self.max_sample = used, max_sample
         #: set-bit counts per bit and the weight histogram of the new rows
         self.usage, self.weight_hist = usage, weight_hist
+        #: heaviest code so far and each bit's postings over all blocks, after the append
+        self.max_weight, self.bit_postings = max_weight, bit_postings
 
 
 def _split_ranges(ranges, tasks):

@@ -1131,6 +1131,7 @@ class Store:
             state.bits, state.threshold, state.segment, state.detectors, state.seed, state.block_span,
             rows=state.rows, postings=state.postings, block_indptr=state.block_indptr,
             block_lo=state.block_lo, block_hi=state.block_hi, max_sample=state.max_sample,
+            max_weight=int(state.weights.max()) if state.weights.shape[0] else 0,
         )
         store._words, store._weights, store._removed = state.words, state.weights, state.removed
         store._row_ids = state.row_ids
@@ -1168,6 +1169,8 @@ class Store:
         assert int(self._removed[:n].sum()) == self._removed_count, f"removed count: {state}"
         if n:
             assert self._weights[:n].min() >= self._threshold, f"a stored code is lighter than threshold: {state}"
+            # the scan lowers its threshold only if this holds (whole-code detectors)
+            assert self._bank._max_weight >= self._weights[:n].max(), f"bank's heaviest weight stale: {state}"
         if self._row_ids is not None:
             ids = self._row_ids[:n]
             assert np.all(np.diff(ids) > 0), f"row ids not ascending: {state}"

@@ -27,9 +27,11 @@ class StoreMachine(RuleBasedStateMachine):
         segment=st.sampled_from([None, 3, 5]),
         detectors=st.integers(1, 3),
         seed=st.integers(0, 2**64 - 1),
+        verify_cost=st.sampled_from([0.0, 256.0, float("inf")]),  # prefix filtering: lowest, usual, off
     )
-    def start(self, threshold, segment, detectors, seed):
+    def start(self, threshold, segment, detectors, seed, verify_cost):
         self.store = SmallBlockStore(BITS, threshold=threshold, segment=segment, detectors=detectors, seed=seed)
+        self.store._bank.verify_cost = verify_cost
         self.naive = NaiveStore(threshold)
 
     def _samples(self, ids):
