@@ -418,6 +418,10 @@ def merge_blocks(post, block_indptr, block_lo, first_block, last_block, out_offs
 # queries
 # ---------------------------------------------------------------------------
 
+#: Fired detectors a scan makes room for at first (a scan that finds more
+#: is run again with room for all, so room is cheap beside a second scan).
+FIRED_ROOM = 4096
+
 
 @inline_kernel
 def _fire(fired, base, room, n_fired, detector):
@@ -600,7 +604,7 @@ def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters,
     all blocks; ``whole`` says every detector samples its whole code (see
     :func:`_prefix_plan`). Returns ``(rows, overlaps)``, rows ascending.
     """
-    fired = np.empty(256, dtype=np.int64)
+    fired = np.empty(FIRED_ROOM, dtype=np.int64)
     rows, overlaps, fired = _answer(
         q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
         min_overlap, fired, bit_postings, whole, verify_cost,
@@ -624,7 +628,7 @@ def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, 
     chunk_lo = np.empty(n_chunks, dtype=np.int64)
     for c in range(n_chunks):
         chunk_lo[c] = c * n_blocks // n_chunks
-    room = 1024
+    room = FIRED_ROOM
     counts = np.zeros(n_chunks, dtype=np.int64)
     fired = np.empty(n_chunks * room, dtype=np.int64)
     again = True
@@ -688,7 +692,7 @@ def query_batch(
     done = np.empty(n_chunks, dtype=np.int64)
     for c in prange(n_chunks):
         counters = np.zeros(counter_like.shape[0], dtype=counter_like.dtype)
-        fired = np.empty(256, dtype=np.int64)
+        fired = np.empty(FIRED_ROOM, dtype=np.int64)
         pos = slab_lo[c]
         i = chunk_lo[c]
         while i < chunk_hi[c]:
