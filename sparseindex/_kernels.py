@@ -435,12 +435,12 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
     """Count each detector's sampled bits present in the query, blocks k0..k1-1.
 
     A block's counters (at most ``block_span`` of them) stay in cache while
-    its postings stream past; while a bit's run is counted, the same bit's
-    run in the next block is prefetched (runs are short and start far apart,
-    so the hardware prefetcher alone leaves the reads latency-bound). Two
-    postings are counted per step (a run's offsets are distinct, so the two
-    increments never collide), in the counters' own integer type. A
-    detector is recorded the moment its counter reaches ``threshold``, so it
+    its postings stream past. Runs are short and start far apart, so the
+    reads are bound by latency: the bounds of every run are read first, and
+    while a bit's run is counted the same bit's run in the next block is
+    prefetched. Two postings are counted per step (a run's offsets are
+    distinct, so the two increments never collide), in the counters' own
+    integer type. A detector is recorded the moment its counter reaches ``threshold``, so it
     appears once. At most ``room`` are recorded, at ``fired[base:]``; the
     true count is returned so that the caller can retry with room for all.
     ``counters`` are zero again on exit.
@@ -449,15 +449,23 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
     n_q = q_bits.shape[0]
     one = counters.dtype.type(1)
     thr = counters.dtype.type(threshold)
+    # every run's bounds first: independent reads that miss in parallel,
+    # where reading them run by run would wait for each in turn
+    starts = np.empty((k1 - k0, n_q), dtype=np.int64)
+    ends = np.empty((k1 - k0, n_q), dtype=np.int64)
+    for k in range(k0, k1):
+        for t in range(n_q):
+            starts[k - k0, t] = block_indptr[k, q_bits[t]]
+            ends[k - k0, t] = block_indptr[k, q_bits[t] + 1]
     for k in range(k0, k1):
         lo = block_lo[k]
+        i = k - k0
         for t in range(n_q):
-            b = q_bits[t]
             if k + 1 < k1:  # the same bit's run in the next block, one hint per cache line
-                for x in range(block_indptr[k + 1, b], block_indptr[k + 1, b + 1], 32):
+                for x in range(starts[i + 1, t], ends[i + 1, t], 32):
                     prefetch(post, x)
-            p = block_indptr[k, b]
-            end = block_indptr[k, b + 1]
+            p = starts[i, t]
+            end = ends[i, t]
             while p + 1 < end:
                 d0 = post[p]
                 d1 = post[p + 1]
