@@ -440,7 +440,8 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
     while a bit's run is counted the same bit's run in the next block is
     prefetched. Two postings are counted per step (a run's offsets are
     distinct, so the two increments never collide), in the counters' own
-    integer type. A detector is recorded the moment its counter reaches ``threshold``, so it
+    integer type, and the first ``threshold - 1`` runs of a block skip the
+    threshold test (no counter can reach it yet). A detector is recorded the moment its counter reaches ``threshold``, so it
     appears once. At most ``room`` are recorded, at ``fired[base:]``; the
     true count is returned so that the caller can retry with room for all.
     ``counters`` are zero again on exit.
@@ -466,6 +467,14 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
                     prefetch(post, x)
             p = starts[i, t]
             end = ends[i, t]
+            if t + 1 < threshold:  # after t + 1 runs no counter can have reached threshold yet
+                while p + 1 < end:
+                    counters[post[p]] += one
+                    counters[post[p + 1]] += one
+                    p += 2
+                if p < end:
+                    counters[post[p]] += one
+                continue
             while p + 1 < end:
                 d0 = post[p]
                 d1 = post[p + 1]
