@@ -49,7 +49,7 @@ else:  # imported as benchmarks.bench_scaling
 
 import numba  # noqa: E402
 
-from sparseindex import Codes, Store  # noqa: E402
+from sparseindex import Codes, Store, _kernels  # noqa: E402
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 BITS, ACTIVE = 2048, 40
@@ -91,6 +91,19 @@ def _batch(store, queries, threads):
     finally:
         numba.set_num_threads(old)
     return best / len(queries)
+
+
+def _counted_share(store, queries):
+    """Mean share of the query bits' postings the scan counts (below 1 when prefix filtering applies)."""
+    bank = store._bank
+    indptr, q_all = queries._csr()
+    shares = []
+    for i in range(len(queries)):
+        q_bits = q_all[indptr[i] : indptr[i + 1]]
+        chosen, _ = _kernels._prefix_plan(q_bits, bank._bit_postings, bank.rows * bank.detectors, bank.threshold,
+                                          bank.whole_codes, bank.verify_cost)
+        shares.append(bank._bit_postings[chosen].sum() / max(1, bank._bit_postings[q_bits].sum()))
+    return float(np.mean(shares))
 
 
 def _peer(codes, queries, threshold):
@@ -165,6 +178,7 @@ def run(args):
             rows.append({
                 "n": n, "segment": s, "build_s": build, "codes_per_s": n / build,
                 "bytes_per_code": store.nbytes / n, "single_s": single, "batch1_s": batch1,
+                "counted_share": _counted_share(store, queries[:n_single]),
                 "batchn_s": batchn, "B1_s": yard_bytes / bw1["read_bytes_per_s"],
                 "Bn_s": yard_bytes / bwn["read_bytes_per_s"], "peer_s": peer,
                 "peak_rss_gb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6,
@@ -189,13 +203,14 @@ def _ms(x):
 
 
 def table(rows, threads):
-    header = ["N", "segment", "build (M codes/s)", "bytes/code", "query", "÷ B (1 thread)", "÷ B (all)",
+    header = ["N", "segment", "build (M codes/s)", "bytes/code", "postings counted", "query", "÷ B (1 thread)",
+              "÷ B (all)",
               "query_many, 1 thread", f"query_many, {threads} threads", "batch speed-up", "scipy S @ q", "÷ scipy"]
     body = []
     for r in rows:
         body.append([
             f"{r['n']:,}", str(r["segment"]), f"{r['codes_per_s'] / 1e6:.2f}", f"{r['bytes_per_code']:.0f}",
-            _ms(r["single_s"]), f"{r['single_s'] / r['B1_s']:.2f}", f"{r['single_s'] / r['Bn_s']:.2f}",
+            f"{100 * r['counted_share']:.0f}%", _ms(r["single_s"]), f"{r['single_s'] / r['B1_s']:.2f}", f"{r['single_s'] / r['Bn_s']:.2f}",
             _ms(r["batch1_s"]), _ms(r["batchn_s"]), f"{r['batch1_s'] / r['batchn_s']:.2f}×",
             _ms(r["peer_s"]), "—" if r["peer_s"] is None else f"{r['single_s'] / r['peer_s']:.3f}",
         ])
@@ -243,35 +258,57 @@ the scan). `query` is timed one call at a time (median); `query_many` per
 query, best of three batches, on one thread and on all threads. The
 yardstick B is the time to stream the int32 postings a query must read,
 `q · (N · s / n) · 4` bytes, at the read bandwidth numpy reaches in the same
-run (`benchmarks/_common.memory_bandwidth`); the store keeps uint16
-offsets, so ratios below 1 would be possible. Every number comes from one
+run (`benchmarks/_common.memory_bandwidth`) on one thread and on all; the
+store keeps uint16 offsets and may count fewer postings than B streams
+("postings counted"), so ratios below 1 would be possible. Every number comes from one
 process; the machine is shared, so the ratios matter more than the times.
 
 ## What the profile showed (and what was done)
 
-* The scan is a counter increment per posting. Counting postings already
-  gathered into one array costs about 0.44 ns each on this machine; the
-  same count straight from the blocks cost about 1 ns, and merely reading
-  them (no counting) 0.33 ms for 10^6 codes — the reads are bound by
-  latency, because a query reads q × blocks short runs (2.5 KB each at
-  10^6 codes) that start far apart.
-* Done: while a query counts a bit's run in one block it prefetches the
-  same bit's run in the next block (LLVM prefetch hints, one per cache
-  line): serial 0.72 → 0.62 ms at 10^6 codes (prefetching only the first
-  line of each run gave half of that); a single query splits its blocks
-  between the threads when no other parallel kernel runs (0.62 → 0.38 ms
-  on 2 cores); `add` sizes the postings from
-  the weights and writes them straight into the final buffer, chunks in
-  parallel (about 3× faster, and no second copy at the peak).
+* The scan is a counter increment per posting, and it is bound by that
+  loop more than by memory: at 10^6 codes a serial scan of distinct
+  queries took 0.49 ms and the same query again (its postings in cache)
+  0.43 ms. Reading alone is cheap; counting costs 0.6–0.9 ns a posting
+  on this machine, and the test for the threshold is a large share of it.
+* Done, in the order they were measured (interleaved A/B runs in one
+  process, each variant on different queries so none has a warm cache):
+  * Prefix filtering (Chaudhuri, Ganti & Kaushik, ICDE 2006) when every
+    detector samples its whole code (`segment=None`, or no code heavier
+    than the segment): a detector reaching `threshold` of q bits reaches
+    `threshold - (q - m)` of any m of them, so the scan skips the bits with
+    the longest postings and the exact overlap check every hit gets
+    anyway settles the candidates. m is chosen per query from the posting
+    counts (Poisson-binomial tail of the candidates, and a candidate check
+    costing about 128 postings, measured by `benchmarks/bench_prefix.py`):
+    at 10^6 codes a query counts 26 of its 40 lists (65% of the postings)
+    for about 6 candidates, and takes 0.67× the unfiltered time.
+  * The bounds of every run are read before any counting (independent
+    misses overlap instead of waiting in turn): 13–15% off a cold serial
+    scan. While a bit's run is counted, the same bit's run in the next
+    block is prefetched (LLVM prefetch hints, one per cache line): 10%.
+  * Two postings counted per step, in the counters' own uint8 type: 7%;
+    the first `threshold - 1` runs of a block skip the threshold test (no
+    counter can reach it yet): 12%.
+  * A single query splits its blocks between the threads when no other
+    parallel kernel runs, plan, scans and exact check in one kernel call.
+  * `add` sizes the postings from the weights and writes them straight
+    into the final buffer, chunks in parallel (about 3× faster, and no
+    second copy at the peak).
 * Tried and dropped: smaller blocks (16,384 detectors, counters in L1)
-  were 2× slower — more, shorter runs, so more latency; counting first and
-  thresholding afterwards (no compare in the loop) was 15% slower.
-* Not done yet: a bit-major layout inside groups of blocks, which would
-  turn a query's runs into q long ones (8× fewer starts).
+  were 2× slower — more, shorter runs; counting without any test and
+  finding the counters over threshold afterwards, byte by byte (15% slower)
+  or eight counters a word (SWAR, 8% slower than the kept loop); unrolling
+  by four, or prefetching two blocks ahead, gained nothing over the above.
+* Not done: a bit-major layout inside groups of blocks (q long runs
+  instead of q × blocks short ones). With the bounds read first, a cold
+  scan is only 13% slower than a hot one, so this is the most it could
+  gain, for a new file format.
+* Sampled detectors (segment below the codes' weight) keep the full scan:
+  checking a candidate there means redrawing its sample, and the estimate
+  for segment 20 was a 10% gain at best.
 * Parallel kernels need the cores to themselves: when another process keeps
   a core busy, a parallel call can wait a scheduler time slice (several
-  ms) for its second thread; a row whose batch speed-up is about 1× was
-  measured in such a moment. `SPARSEINDEX_PARALLEL_QUERY=0` keeps single
+  ms) for its second thread. `SPARSEINDEX_PARALLEL_QUERY=0` keeps single
   queries on one thread; `NUMBA_NUM_THREADS` bounds the batch threads.
 
 """
