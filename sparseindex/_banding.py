@@ -35,10 +35,9 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
-from numba import prange
 
 from . import _kernels
-from ._config import PARALLEL_LOCK, kernel, parallel_kernel, thread_count
+from ._config import PARALLEL_LOCK, kernel, parallel_kernel, prange, thread_count
 from ._kernels import _mix64, popcount64
 
 __all__ = [

@@ -22,9 +22,8 @@ Layout conventions
 from __future__ import annotations
 
 import numpy as np
-from numba import prange
 
-from ._config import DISABLE_JIT, inline_kernel, kernel, parallel_kernel
+from ._config import DISABLE_JIT, inline_kernel, kernel, on_first_use, parallel_kernel, prange
 
 # ---------------------------------------------------------------------------
 # bit tricks and a counter-based random stream
@@ -61,42 +60,50 @@ if DISABLE_JIT:
         """A cache hint: nothing to do in plain Python."""
 
 else:
-    from llvmlite import ir
-    from numba import types
-    from numba.core import cgutils
-    from numba.extending import intrinsic
 
-    @intrinsic
-    def prefetch(typingctx, array, index):
-        """Hint the CPU to fetch ``array[index]`` into cache (LLVM ``prefetch``, read, high locality).
+    def _define_intrinsics(numba):
+        """The LLVM intrinsics kernels use, made when numba is first imported."""
+        from llvmlite import ir
+        from numba import types
+        from numba.core import cgutils
+        from numba.extending import intrinsic
 
-        Used where the next place a kernel reads is known but far away (the
-        next block's postings runs), so the fetch overlaps current work. A
-        hint never faults, even for an address past the array.
-        """
-        sig = types.void(array, index)
+        @intrinsic
+        def prefetch(typingctx, array, index):
+            """Hint the CPU to fetch ``array[index]`` into cache (LLVM ``prefetch``, read, high locality).
 
-        def codegen(context, builder, signature, args):
-            aryty = signature.args[0]
-            ary = context.make_array(aryty)(context, builder, args[0])
-            ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]], wraparound=False)
-            i8p = ir.IntType(8).as_pointer()
-            i32 = ir.IntType(32)
-            fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
-            fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0i8")
-            builder.call(fn, [builder.bitcast(ptr, i8p), ir.Constant(i32, 0), ir.Constant(i32, 3), ir.Constant(i32, 1)])
-            return context.get_dummy_value()
+            Used where the next place a kernel reads is known but far away (the
+            next block's postings runs), so the fetch overlaps current work. A
+            hint never faults, even for an address past the array.
+            """
+            sig = types.void(array, index)
 
-        return sig, codegen
+            def codegen(context, builder, signature, args):
+                aryty = signature.args[0]
+                ary = context.make_array(aryty)(context, builder, args[0])
+                ptr = cgutils.get_item_pointer(context, builder, aryty, ary, [args[1]], wraparound=False)
+                i8p = ir.IntType(8).as_pointer()
+                i32 = ir.IntType(32)
+                fnty = ir.FunctionType(ir.VoidType(), [i8p, i32, i32, i32])
+                fn = cgutils.get_or_insert_function(builder.module, fnty, "llvm.prefetch.p0i8")
+                builder.call(fn, [builder.bitcast(ptr, i8p), ir.Constant(i32, 0), ir.Constant(i32, 3),
+                                  ir.Constant(i32, 1)])
+                return context.get_dummy_value()
 
-    @intrinsic
-    def _ctpop_u64(typingctx, x):
-        sig = types.uint64(types.uint64)
+            return sig, codegen
 
-        def codegen(context, builder, signature, args):
-            return builder.ctpop(args[0])
+        @intrinsic
+        def _ctpop_u64(typingctx, x):
+            sig = types.uint64(types.uint64)
 
-        return sig, codegen
+            def codegen(context, builder, signature, args):
+                return builder.ctpop(args[0])
+
+            return sig, codegen
+
+        globals().update(prefetch=prefetch, _ctpop_u64=_ctpop_u64)
+
+    on_first_use(_define_intrinsics)
 
     @inline_kernel
     def popcount64(x):

@@ -121,3 +121,30 @@ def test_public_names_survive_importing_their_submodules():
     result = run(code)
     assert result.returncode == 0, result.stderr[-2000:]
     assert result.stdout.split() == ["True", "Health", "ProbeResult"]
+
+
+def test_numba_loads_on_the_first_kernel_call_and_every_kernel_is_swapped_in():
+    """``import sparseindex`` leaves numba unimported; the first call puts real dispatchers everywhere."""
+    code = textwrap.dedent(
+        """
+        import sys
+        import sparseindex
+        assert "numba" not in sys.modules, "import sparseindex imported numba"
+        from sparseindex import Codes, Store, _banding, _kernels, _unionfind, model
+        store = Store(64, threshold=2, seed=0)
+        store.add([[1, 2, 3], [2, 3, 4]])
+        assert store.query([2, 3]).ids.tolist() == [0, 1]
+        import numba
+        from numba.core.registry import CPUDispatcher
+        for module in (_kernels, _banding, _unionfind, model):
+            left = [k for k, v in vars(module).items() if type(v).__name__ == "_Deferred"]
+            assert not left, (module.__name__, left)
+        assert isinstance(_kernels.query_one, CPUDispatcher)
+        assert _banding.popcount64 is _kernels.popcount64  # imported by name, swapped too
+        assert _kernels.prange is numba.prange and _banding.prange is numba.prange
+        print("ok")
+        """
+    )
+    result = run(code)
+    assert result.returncode == 0, result.stderr[-2000:]
+    assert result.stdout.split() == ["ok"]
