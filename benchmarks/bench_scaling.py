@@ -184,6 +184,10 @@ def run(args):
             t0 = time.perf_counter()
             store.add(codes)
             build = time.perf_counter() - t0
+            # the yardstick's bandwidth, measured again just before this row's
+            # queries: a shared machine's speed drifts over a long run
+            row_bw1 = common.memory_bandwidth(16 if args.quick else 64, repeats=3, threads=1)["read_bytes_per_s"]
+            row_bwn = common.memory_bandwidth(16 if args.quick else 64, repeats=3, threads=threads)["read_bytes_per_s"]
             single = _single(store, queries[:n_single])
             batch1 = _batch(store, queries[:n_batch], 1)
             batchn = _batch(store, queries[:n_batch], threads)
@@ -193,8 +197,8 @@ def run(args):
                 "n": n, "segment": s, "build_s": build, "codes_per_s": n / build,
                 "bytes_per_code": store.nbytes / n, "single_s": single, "batch1_s": batch1,
                 "counted_share": _counted_share(store, queries[:n_single]),
-                "batchn_s": batchn, "B1_s": yard_bytes / bw1["read_bytes_per_s"],
-                "Bn_s": yard_bytes / bwn["read_bytes_per_s"], "peer_s": peer,
+                "batchn_s": batchn, "B1_s": yard_bytes / row_bw1, "Bn_s": yard_bytes / row_bwn,
+                "bw1": row_bw1, "bwn": row_bwn, "peer_s": peer,
                 "peak_rss_gb": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1e6,
             })
             del store
@@ -272,9 +276,11 @@ the scan). `query` is timed one call at a time (median); `query_many` per
 query, best of three batches, on one thread and on all threads. The
 yardstick B is the time to stream the int32 postings a query must read,
 `q · (N · s / n) · 4` bytes, at the read bandwidth numpy reaches in the same
-run (`benchmarks/_common.memory_bandwidth`) on one thread and on all; the
-store keeps uint16 offsets and may count fewer postings than B streams
-("postings counted"), so ratios below 1 would be possible. Every number comes from one
+run (`benchmarks/_common.memory_bandwidth`, 64 MiB, measured again just
+before each row's queries, since a shared machine's speed drifts) on one
+thread and on all; the store keeps uint16 offsets and may count fewer
+postings than B streams ("postings counted"), so ratios below 1 would be
+possible. Every number comes from one
 process; the machine is shared, so the ratios matter more than the times.
 
 ## What the profile showed (and what was done)
@@ -382,12 +388,13 @@ def readme_block(rows, bandwidth, threads, record) -> str:
             _ms(r["peer_s"]), "—" if r["peer_s"] is None else f"{r['peer_s'] / r['single_s']:.0f}×",
             _ms(r["batchn_s"]), f"{r['batch1_s'] / r['batchn_s']:.2f}×",
         ])
-    bw1 = bandwidth[0]["read_bytes_per_s"] / 1e9
+    bw1 = statistics.median(r["bw1"] for r in rows if "bw1" in r) / 1e9 if "bw1" in rows[0] else (
+        bandwidth[0]["read_bytes_per_s"] / 1e9)
     intro = (
         f"Random 2048-bit codes with 40 set bits, `Store(2048, threshold={s // 2}, segment={s})` (every detector "
         f"samples the whole code, as with `segment=None`), one `add`; random queries, medians, one process. "
-        f"B streams the int32 postings of the query's bits at the one-thread read bandwidth of the same run "
-        f"({bw1:.1f} GB/s). {record['cpu_model']}, {record['usable_cpus']} usable CPUs; {record['python']}, "
+        f"B streams the int32 postings of the query's bits at the one-thread read bandwidth measured just "
+        f"before (median {bw1:.1f} GB/s). {record['cpu_model']}, {record['usable_cpus']} usable CPUs; {record['python']}, "
         f"numpy {record['numpy']}, scipy {record['scipy']}, numba {record['numba']}; sparseindex at "
         f"{record['sparseindex_commit']}, measured {record['date_utc']}. Full tables, segments 10 and 20, "
         f"start-up times and the profile notes: `docs/performance.md`."
