@@ -288,7 +288,7 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
     return det_indptr, det_bits
 
 
-@inline_kernel
+@kernel
 def _build_chunk(words, code_ids, r0, r1, first_row, detectors, segment, seed, bits, block_span, post, post_base,
                  block_indptr, block_lo, block_hi, block_base, usage, weight_hist, count_usage):
     """Sample and index rows r0..r1-1 of ``words`` into preallocated tables.
@@ -437,7 +437,7 @@ def _fire(fired, base, room, n_fired, detector):
     return n_fired + 1
 
 
-@inline_kernel
+@kernel
 def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters, threshold, fired, base, room):
     """Count each detector's sampled bits present in the query, blocks k0..k1-1.
 
@@ -505,7 +505,7 @@ def _scan_range(q_bits, post, block_indptr, block_lo, block_hi, k0, k1, counters
     return n_fired
 
 
-@inline_kernel
+@kernel
 def _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, threshold, fired):
     """:func:`_scan_range` over every block into ``fired``."""
     return _scan_range(
@@ -514,7 +514,7 @@ def _scan_count(q_bits, post, block_indptr, block_lo, block_hi, counters, thresh
     )
 
 
-@inline_kernel
+@kernel
 def _fired_rows(fired, n_fired, detectors):
     """Distinct rows (ascending) owning the fired detectors."""
     rows = np.sort(fired[:n_fired] // detectors)
@@ -526,7 +526,7 @@ def _fired_rows(fired, n_fired, detectors):
     return rows[:n]
 
 
-@inline_kernel
+@kernel
 def _verified(rows, removed, words, q_words, min_overlap):
     """The live ``rows`` whose exact overlap with the query is >= min_overlap, with it."""
     out_rows = np.empty(rows.shape[0], dtype=np.int64)
@@ -544,7 +544,7 @@ def _verified(rows, removed, words, q_words, min_overlap):
     return out_rows[:n], out_ov[:n]
 
 
-@inline_kernel
+@kernel
 def _prefix_plan(q_bits, bit_postings, n_detectors, threshold, whole, verify_cost):
     """The query bits to scan, and the count that makes a detector a candidate.
 
@@ -599,7 +599,7 @@ def _prefix_plan(q_bits, bit_postings, n_detectors, threshold, whole, verify_cos
     return chosen, threshold - (n_q - best_m)
 
 
-@inline_kernel
+@kernel
 def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
             min_overlap, fired, bit_postings, whole, verify_cost):
     """Rows hit by one query with their overlaps; a larger ``fired`` if needed.
