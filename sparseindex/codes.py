@@ -629,6 +629,24 @@ def as_codes(obj, bits: int, *, what: str = "codes") -> Codes:
     return codes
 
 
+def _plain_ints_code(obj, bits: int):
+    """The one-row Codes of a list or tuple of distinct in-range Python ints; None for anything else.
+
+    The common query form, without the general path's per-row machinery
+    (about half its time); any other input — and any bad value — goes the
+    general way, which names the problem.
+    """
+    if type(obj) not in (list, tuple) or not all(type(x) is int for x in obj):
+        return None
+    if obj and (min(obj) < 0 or max(obj) >= bits):
+        return None
+    arr = np.array(obj, dtype=np.int64) if obj else np.zeros(0, dtype=np.int64)
+    words, dup_row, _ = _kernels.pack_indices(np.array([0, arr.size], dtype=np.int64), arr, _words_for(bits))
+    if dup_row >= 0:
+        return None
+    return Codes._wrap(words, bits)
+
+
 def as_code(obj, bits: int, *, what: str = "code") -> Codes:
     """Convert any accepted single-code form to a one-row :class:`Codes`.
 
@@ -637,6 +655,9 @@ def as_code(obj, bits: int, *, what: str = "code") -> Codes:
     >>> as_code({5, 1}, bits=8).to_indices()[0].tolist()
     [1, 5]
     """
+    fast = _plain_ints_code(obj, bits)
+    if fast is not None:
+        return fast
     from bitarray import bitarray
 
     if isinstance(obj, Codes):

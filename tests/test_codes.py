@@ -1,5 +1,7 @@
 """Conversions in and out of Codes, and their error messages."""
 
+import re
+
 import numpy as np
 import pytest
 import scipy.sparse as sp
@@ -173,3 +175,31 @@ def test_ambiguous_and_wrong_forms_raise_type_error_naming_the_routes():
         as_code(np.zeros(8, dtype=bool), 16)
     with pytest.raises(ValueError, match="codes have bits=8, expected bits=16"):
         as_codes(Codes.from_indices([[1]], 8), 16)
+
+
+@given(
+    values=st.lists(st.integers(-3, 70), max_size=12),
+    as_tuple=st.booleans(),
+)
+def test_plain_int_queries_take_the_fast_path_to_the_same_code(values, as_tuple):
+    """as_code's fast path for lists of ints agrees with the general path, errors included (reference: from_indices)."""
+    from sparseindex.codes import _plain_ints_code
+
+    obj = tuple(values) if as_tuple else list(values)
+    try:
+        want = Codes.from_indices([obj], 64)
+    except (ValueError, TypeError) as e:
+        assert _plain_ints_code(obj, 64) is None
+        with pytest.raises(type(e), match=re.escape(str(e))):
+            as_code(obj, 64)
+        return
+    got = as_code(obj, 64)
+    assert np.array_equal(got._words, want._words) and got.weights.tolist() == want.weights.tolist()
+
+
+def test_plain_int_fast_path_refuses_bools_and_numpy_ints():
+    from sparseindex.codes import _plain_ints_code
+
+    assert _plain_ints_code([True, 2], 64) is None
+    assert _plain_ints_code([np.int64(1), 2], 64) is None
+    assert _plain_ints_code((1, 2), 64) is not None
