@@ -180,16 +180,16 @@ def run(args):
     for n in sizes:
         codes = Codes.random(n, BITS, ACTIVE, seed=n)
         for s in segments:
+            # the yardstick's bandwidth, measured again for this row: a shared
+            # machine's speed drifts over a long run. Measured before the store
+            # exists (256 MiB arrays; a smaller one under-reports two threads),
+            # so that it cannot raise the peak memory reported below.
+            row_bw1 = common.memory_bandwidth(16 if args.quick else 256, repeats=3, threads=1)["read_bytes_per_s"]
+            row_bwn = common.memory_bandwidth(16 if args.quick else 256, repeats=3, threads=threads)["read_bytes_per_s"]
             store = Store(BITS, threshold=s // 2, segment=s, seed=7)
             t0 = time.perf_counter()
             store.add(codes)
             build = time.perf_counter() - t0
-            # the yardstick's bandwidth, measured again just before this row's
-            # queries: a shared machine's speed drifts over a long run
-            # (256 MiB: a smaller array under-reports two threads; the store's
-            # build peak stays above this allocation, so peak memory is unchanged)
-            row_bw1 = common.memory_bandwidth(16 if args.quick else 256, repeats=3, threads=1)["read_bytes_per_s"]
-            row_bwn = common.memory_bandwidth(16 if args.quick else 256, repeats=3, threads=threads)["read_bytes_per_s"]
             single = _single(store, queries[:n_single])
             batch1 = _batch(store, queries[:n_batch], 1)
             batchn = _batch(store, queries[:n_batch], threads)
@@ -279,7 +279,7 @@ query, best of three batches, on one thread and on all threads. The
 yardstick B is the time to stream the int32 postings a query must read,
 `q · (N · s / n) · 4` bytes, at the read bandwidth numpy reaches in the same
 run (`benchmarks/_common.memory_bandwidth`, 256 MiB, measured again just
-before each row's queries, since a shared machine's speed drifts) on one
+before each row's store is built, since a shared machine's speed drifts) on one
 thread and on all; the store keeps uint16 offsets and may count fewer
 postings than B streams ("postings counted"), so ratios below 1 would be
 possible. Every number comes from one
@@ -395,8 +395,8 @@ def readme_block(rows, bandwidth, threads, record) -> str:
     intro = (
         f"Random 2048-bit codes with 40 set bits, `Store(2048, threshold={s // 2}, segment={s})` (every detector "
         f"samples the whole code, as with `segment=None`), one `add`; random queries, medians, one process. "
-        f"B streams the int32 postings of the query's bits at the one-thread read bandwidth measured just "
-        f"before (median {bw1:.1f} GB/s). {record['cpu_model']}, {record['usable_cpus']} usable CPUs; {record['python']}, "
+        f"B streams the int32 postings of the query's bits at the one-thread read bandwidth measured for "
+        f"each row (median {bw1:.1f} GB/s). {record['cpu_model']}, {record['usable_cpus']} usable CPUs; {record['python']}, "
         f"numpy {record['numpy']}, scipy {record['scipy']}, numba {record['numba']}; sparseindex at "
         f"{record['sparseindex_commit']}, measured {record['date_utc']}. Full tables, segments 10 and 20, "
         f"start-up times and the profile notes: `docs/performance.md`."
