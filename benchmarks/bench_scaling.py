@@ -302,7 +302,8 @@ process; the machine is shared, so the ratios matter more than the times.
     anyway settles the candidates. m is chosen per query from the posting
     counts (Poisson-binomial tail of the candidates, and a candidate check
     costing about 128 postings, measured by `benchmarks/bench_prefix.py`):
-    at 10^6 codes a query counts 26 of its 40 lists (65% of the postings)
+    at 10^6 codes a query counts 26 of its 40 lists (the shortest: 62% of the
+    postings)
     for about 6 candidates, and takes 0.67× the unfiltered time.
   * The bounds of every run are read before any counting (independent
     misses overlap instead of waiting in turn): 13–15% off a cold serial
@@ -328,6 +329,12 @@ process; the machine is shared, so the ratios matter more than the times.
 * Sampled detectors (segment below the codes' weight) keep the full scan:
   checking a candidate there means redrawing its sample, and the estimate
   for segment 20 was a 10% gain at best.
+* Run to run the same measurement moves: on 2026-12-02 nine runs of the
+  10^6, segment 40 row with the scan as it is now gave a single query of
+  0.25–0.42 ms, 2.35–3.67 × B (median 3.30), while the numpy bandwidth
+  stayed within 25–32 GB/s. The counting loop slows when the machine's
+  other tenants are busy and the bandwidth probe barely does, so the ratio
+  drifts too.
 * Parallel kernels need the cores to themselves: when another process keeps
   a core busy, a parallel call can wait a scheduler time slice (several
   ms) for its second thread. `SPARSEINDEX_PARALLEL_QUERY=0` keeps single
