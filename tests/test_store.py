@@ -261,3 +261,15 @@ def test_weights_above_255_use_wider_counters():
     store.add([list(range(400)), list(range(500, 1000))])
     assert store.query(list(range(350))).ids.tolist() == [0]
     assert store.query(list(range(600, 1000))).overlaps.tolist() == [400]
+
+
+def test_single_query_with_more_hits_than_the_first_room_rescans_correctly():
+    """Over 4,096 fired detectors per chunk: the scan runs again with room for all (serial and parallel paths)."""
+    store = SmallBlockStore(bits=32, threshold=1, seed=0)
+    rows = [[i % 32, (i + 1) % 32] for i in range(10_000)]
+    store.add(rows)
+    want = sorted(i for i, r in enumerate(rows) if 5 in r)
+    assert sorted(store.query([5]).ids.tolist()) == want
+    everything = store.query(list(range(32)))
+    assert len(everything) == 10_000 and set(everything.overlaps.tolist()) == {2}
+    assert store.query_many([list(range(32))])[0] == everything
