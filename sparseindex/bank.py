@@ -36,6 +36,10 @@ BLOCK_SPAN = 2**16
 #: A single query splits its blocks among threads from this many blocks up.
 PARALLEL_MIN_BLOCKS = 2
 
+#: Counter rows of parallel single queries, by (chunks, span, dtype); used
+#: only under PARALLEL_LOCK (see ``DetectorBank._chunk_counters``).
+_CHUNK_COUNTERS: dict = {}
+
 #: Codes sampled per kernel call in ``append`` (bounds the temporaries).
 APPEND_CHUNK_ROWS = 2**18
 
@@ -293,6 +297,18 @@ class DetectorBank:
         """A zeroed counter array for one block, of the narrowest safe dtype."""
         return np.zeros(self.block_span, dtype=self.counter_dtype())
 
+    def _chunk_counters(self, n_chunks: int) -> np.ndarray:
+        """Zeroed counter rows for a parallel single query, one per chunk; call only holding PARALLEL_LOCK.
+
+        Only one parallel kernel runs at a time, so one set per shape serves
+        every bank and thread; kernels leave it zeroed.
+        """
+        key = (n_chunks, self.block_span, np.dtype(self.counter_dtype()).str)
+        rows = _CHUNK_COUNTERS.get(key)
+        if rows is None:
+            rows = _CHUNK_COUNTERS[key] = np.zeros((n_chunks, self.block_span), dtype=self.counter_dtype())
+        return rows
+
     def counters_fit(self, counters: np.ndarray) -> bool:
         return counters.dtype == self.counter_dtype() and counters.shape[0] >= self.block_span
 
@@ -306,8 +322,8 @@ class DetectorBank:
         thread is in a parallel kernel already, in which case this one scans
         serially rather than wait.
         """
-        args = (q_bits, q_words, self._post, self._block_indptr, self._block_lo, self._block_hi, counters,
-                self.threshold, self.detectors, removed, words, min_overlap, self._bit_postings, self.whole_codes,
+        postings = (self._post, self._block_indptr, self._block_lo, self._block_hi)
+        rest = (self.threshold, self.detectors, removed, words, min_overlap, self._bit_postings, self.whole_codes,
                 self.verify_cost)
         threads = thread_count()
         if (
@@ -317,10 +333,15 @@ class DetectorBank:
             and PARALLEL_LOCK.acquire(blocking=False)
         ):
             try:
-                return _kernels.query_one_parallel(*args, min(self.block_count, threads))
+                chunk_counters = self._chunk_counters(min(self.block_count, threads))
+                try:
+                    return _kernels.query_one_parallel(q_bits, q_words, *postings, chunk_counters, *rest)
+                except BaseException:
+                    _CHUNK_COUNTERS.clear()  # a scan cut short may leave counts behind
+                    raise
             finally:
                 PARALLEL_LOCK.release()
-        return _kernels.query_one(*args)
+        return _kernels.query_one(q_bits, q_words, *postings, counters, *rest)
 
     def scan_many(self, q_indptr, q_bits, q_words, words, removed, min_overlap):
         """Rows hit by each of many queries, in parallel (kernel ``query_batch``).

@@ -273,3 +273,20 @@ def test_single_query_with_more_hits_than_the_first_room_rescans_correctly():
     everything = store.query(list(range(32)))
     assert len(everything) == 10_000 and set(everything.overlaps.tolist()) == {2}
     assert store.query_many([list(range(32))])[0] == everything
+
+
+def test_parallel_and_serial_single_queries_agree_and_leave_the_kept_counters_zero(monkeypatch):
+    """The parallel path keeps its counter rows between calls; every query must leave them zeroed."""
+    from sparseindex import bank
+
+    rng = np.random.default_rng(11)
+    store = SmallBlockStore(bits=64, threshold=3, seed=0)
+    store.add([np.sort(rng.choice(64, size=int(rng.integers(3, 9)), replace=False)).tolist() for _ in range(600)])
+    queries = [np.sort(rng.choice(64, size=int(rng.integers(1, 20)), replace=False)).tolist() for _ in range(40)]
+    parallel = [store.query(q) for q in queries]
+    if bank.thread_count() > 1 and bank.PARALLEL_SINGLE_QUERY:
+        assert bank._CHUNK_COUNTERS, "the parallel path was not taken"
+    for rows in bank._CHUNK_COUNTERS.values():
+        assert not rows.any()
+    monkeypatch.setattr(bank, "PARALLEL_SINGLE_QUERY", False)
+    assert [store.query(q) for q in queries] == parallel
