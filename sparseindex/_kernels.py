@@ -552,6 +552,11 @@ def _verified(rows, removed, words, q_words, min_overlap):
     """The live ``rows`` whose exact overlap with the query is >= min_overlap, with it."""
     out_rows = np.empty(rows.shape[0], dtype=np.int64)
     out_ov = np.empty(rows.shape[0], dtype=np.int64)
+    # the rows are far apart in memory: hint them all first, so that their
+    # misses overlap instead of being waited for one row at a time
+    for i in range(rows.shape[0]):
+        for w in range(0, words.shape[1], 8):  # one hint per cache line
+            prefetch(words[rows[i]], w)
     n = 0
     for i in range(rows.shape[0]):
         r = rows[i]
