@@ -323,7 +323,7 @@ process; the machine is shared, so the ratios matter more than the times.
     the longest postings and the exact overlap check every hit gets
     anyway settles the candidates. m is chosen per query from the posting
     counts (Poisson-binomial tail of the candidates, and a candidate check
-    costing about 128 postings, measured by `benchmarks/bench_prefix.py`):
+    costing about 256 postings, measured by `benchmarks/bench_prefix.py`):
     at 10^6 codes a query counts 26 of its 40 lists (the shortest: 62% of the
     postings)
     for about 6 candidates, and takes 0.67× the unfiltered time.
