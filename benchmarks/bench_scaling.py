@@ -310,12 +310,14 @@ process; the machine is shared, so the ratios matter more than the times.
 ## What the profile showed (and what was done)
 
 * The scan is a counter increment per posting, and it is bound by that
-  loop more than by memory: at 10^6 codes a serial scan of distinct
-  queries took 0.49 ms and the same query again (its postings in cache)
-  0.43 ms. Reading alone is cheap; counting costs 0.6–0.9 ns a posting
-  on this machine, and the test for the threshold is a large share of it.
+  loop, not by memory: at 10^6 codes one block of postings fetched ahead
+  is counted in 22 µs, the same block already in cache in 19 µs, and a
+  block nobody fetched ahead in 28 µs. This machine's VM exposes no
+  hardware counters (`perf` reports them unsupported), so the evidence is
+  timings and the assembly numba generates (`inspect_asm`).
 * Done, in the order they were measured (interleaved A/B runs in one
-  process, each variant on different queries so none has a warm cache):
+  process, each variant on different queries so none has a warm cache;
+  "0.9×" is the new query time over the old one at 10^6 codes):
   * Prefix filtering (Chaudhuri, Ganti & Kaushik, ICDE 2006) when every
     detector samples its whole code (`segment=None`, or no code heavier
     than the segment): a detector reaching `threshold` of q bits reaches
@@ -324,39 +326,61 @@ process; the machine is shared, so the ratios matter more than the times.
     anyway settles the candidates. m is chosen per query from the posting
     counts (Poisson-binomial tail of the candidates, and a candidate check
     costing about 256 postings, measured by `benchmarks/bench_prefix.py`):
-    at 10^6 codes a query counts 26 of its 40 lists (the shortest: 62% of the
-    postings)
-    for about 6 candidates, and takes 0.67× the unfiltered time.
+    at 10^6 codes a query counts 26 of its 40 lists (the shortest: 65% of
+    the postings) for about 6 candidates, 0.71× the unfiltered time.
   * The bounds of every run are read before any counting (independent
-    misses overlap instead of waiting in turn): 13–15% off a cold serial
-    scan. While a bit's run is counted, the same bit's run in the next
-    block is prefetched (LLVM prefetch hints, one per cache line): 10%.
-  * Two postings counted per step, in the counters' own uint8 type: 7%;
-    the first `threshold - 1` runs of a block skip the threshold test (no
-    counter can reach it yet): 12%.
+    misses overlap instead of waiting in turn): 0.85–0.87×. While a bit's
+    run is counted, the same bit's run in the next block is prefetched
+    (LLVM prefetch hints, one per cache line): 0.9×; hinting into the
+    second-level cache rather than the first (a block's runs would evict
+    the counters there) about 0.9× again.
+  * Two postings counted per step, in the counters' own uint8 type: 0.93×.
+  * No test in the counting loop: once a block's runs are counted, a
+    vectorised sweep collects its counters at or over the threshold (the
+    maximum of 1,024 counters rules a chunk out; a chunk holding a hit is
+    searched through 64-counter bit masks). Together with the hint level
+    above 0.85–0.91× on one thread, 0.87–0.89× on two. The same idea
+    with a scalar sweep (byte by byte, or eight counters a word) had been
+    8–15% slower: the vector compares are what make it pay.
+  * Unsigned run positions: numba's fix-up for negative indices left the
+    loop, 15 instructions per two postings became 7: 0.79–0.91× on one
+    thread, 0.92–0.94× on two.
+  * A candidate's chunk searched by bit masks instead of byte by byte: a
+    candidate cost 1,359 postings before and 272 after, and the plan's
+    constant moved from 128 to 256: 0.92–0.94×.
   * A single query splits its blocks between the threads when no other
-    parallel kernel runs, plan, scans and exact check in one kernel call.
+    parallel kernel runs, plan, scans and exact check in one kernel call;
+    its counter rows are kept between calls (with a fresh row per call a
+    one-chunk parallel scan was 11% slower than the serial kernel, with
+    kept rows level with it); the candidate rows are hinted before any is
+    checked (85 candidates: 7.8 µs to 4.9 µs).
   * `add` sizes the postings from the weights and writes them straight
     into the final buffer, chunks in parallel (about 3× faster, and no
     second copy at the peak).
 * Tried and dropped: smaller blocks (16,384 detectors, counters in L1)
-  were 2× slower — more, shorter runs; counting without any test and
-  finding the counters over threshold afterwards, byte by byte (15% slower)
-  or eight counters a word (SWAR, 8% slower than the kept loop); unrolling
-  by four, or prefetching two blocks ahead, gained nothing over the above.
+  were 2× slower — more, shorter runs; counting each block in tiles of
+  16 or 32 Ki counters (a cursor per run) gained nothing (0.99–1.03×);
+  prefetching each chunk's first block before counting, or two blocks
+  ahead, helped one thread (0.91×) but not two (0.97–1.06×, within the
+  noise); a smaller first room for fired detectors; unrolling by four.
+* Where a single query's time goes now (10^6 codes, two threads): each
+  thread's half of the scan takes 0.16–0.19 ms alone, and the two halves
+  run 17% longer side by side than one alone (both cores count and
+  stream at once); the plan takes 2–3 µs, the exact check of the
+  candidates a few µs, and `Store.query` around the kernel about 15 µs
+  (validation, the read lock, id mapping, ordering the hits).
 * Not done: a bit-major layout inside groups of blocks (q long runs
-  instead of q × blocks short ones). With the bounds read first, a cold
-  scan is only 13% slower than a hot one, so this is the most it could
+  instead of q × blocks short ones). A block already in cache is counted
+  only 15% faster than one fetched ahead, so this is the most it could
   gain, for a new file format.
 * Sampled detectors (segment below the codes' weight) keep the full scan:
   checking a candidate there means redrawing its sample, and the estimate
   for segment 20 was a 10% gain at best.
-* Run to run the same measurement moves: on 2026-12-02 nine runs of the
-  10^6, segment 40 row with the scan as it is now gave a single query of
-  0.25–0.42 ms, 2.35–3.67 × B (median 3.30), while the numpy bandwidth
-  stayed within 25–32 GB/s. The counting loop slows when the machine's
-  other tenants are busy and the bandwidth probe barely does, so the ratio
-  drifts too.
+* Run to run the same measurement moves with the machine's other
+  tenants: on 2026-12-02 three runs of the 10^6, segment 40 row within ten
+  minutes gave a single query of 0.374, 0.232 and 0.235 ms. Hence the
+  three rounds per row: the best is the table's figure and the worst
+  stands beside it.
 * Parallel kernels need the cores to themselves: when another process keeps
   a core busy, a parallel call can wait a scheduler time slice (several
   ms) for its second thread. `SPARSEINDEX_PARALLEL_QUERY=0` keeps single
