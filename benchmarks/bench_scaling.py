@@ -447,7 +447,8 @@ def readme_block(rows, bandwidth, threads, record) -> str:
         bandwidth[0]["read_bytes_per_s"] / 1e9)
     intro = (
         f"Random 2048-bit codes with 40 set bits, `Store(2048, threshold={s // 2}, segment={s})` (every detector "
-        f"samples the whole code, as with `segment=None`), one `add`; random queries, medians, one process. "
+        f"samples the whole code, as with `segment=None`), one `add`; random queries, the best of three "
+        f"rounds' medians (the worst is in `docs/performance.md`), one process. "
         f"B streams the int32 postings of the query's bits at the one-thread read bandwidth measured for "
         f"each row (median {bw1:.1f} GB/s). {record['cpu_model']}, {record['usable_cpus']} usable CPUs; {record['python']}, "
         f"numpy {record['numpy']}, scipy {record['scipy']}, numba {record['numba']}; sparseindex at "
