@@ -688,10 +688,9 @@ def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, 
     long) per chunk, and is zero again on exit: kept by the caller, so that
     a query does not pay for fresh memory (with a new row per chunk and
     call, one chunk ran 11% slower than :func:`query_one`; with kept rows,
-    level with it). Each chunk has room for
-    its fired detectors; a chunk that runs out of room is rescanned with
-    room for all. One call does the plan, the scans and the exact check, so
-    a query pays one dispatch.
+    level with it). Each chunk has room for its fired detectors; a chunk
+    that runs out of room is rescanned with room for all. One call does the
+    plan, the scans and the exact check, so a query pays one dispatch.
     """
     n_chunks = chunk_counters.shape[0]
     n_blocks = block_lo.shape[0]
