@@ -166,6 +166,26 @@ def pack_indices(indptr, indices, n_words):
 
 
 @kernel
+def pack_one_checked(indices, bits, n_words):
+    """One code's packed row from int64 ``indices``; ``ok`` is False at the first index outside 0..bits-1 or repeated.
+
+    The fast path for single queries: it checks while it packs, and a
+    caller that gets ``ok`` False takes the general path, which names the
+    offending value.
+    """
+    words = np.zeros((1, n_words), dtype=np.uint64)
+    for p in range(indices.shape[0]):
+        i = indices[p]
+        if i < 0 or i >= bits:
+            return words, False
+        bit = np.uint64(1) << np.uint64(i & 63)
+        if words[0, i >> 6] & bit:
+            return words, False
+        words[0, i >> 6] |= bit
+    return words, True
+
+
+@kernel
 def row_weights(words):
     """Set-bit count of every packed row."""
     rows = words.shape[0]

@@ -203,3 +203,32 @@ def test_plain_int_fast_path_refuses_bools_and_numpy_ints():
     assert _plain_ints_code([True, 2], 64) is None
     assert _plain_ints_code([np.int64(1), 2], 64) is None
     assert _plain_ints_code((1, 2), 64) is not None
+    assert _plain_ints_code([2**70], 64) is None  # too big for int64: the general path reports it
+    assert _plain_ints_code(np.array([True, False]), 64) is None  # a dense code, not indices
+    assert _plain_ints_code(np.array([1.0, 2.0]), 64) is None
+    assert _plain_ints_code(np.array([[1, 2]]), 64) is None
+    assert _plain_ints_code(np.array([2**63 + 1], dtype=np.uint64), 64) is None
+    assert _plain_ints_code(np.array([1, 2], dtype=np.uint16), 64) is not None
+
+
+@given(
+    values=st.lists(st.integers(-3, 70), max_size=12),
+    dtype=st.sampled_from(["int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64"]),
+    step=st.sampled_from([1, 2]),
+)
+def test_integer_array_queries_take_the_fast_path_to_the_same_code(values, dtype, step):
+    """as_code's fast path for 1-D integer arrays (strided too) agrees with the general path, errors included (reference: from_indices)."""
+    from sparseindex.codes import _plain_ints_code
+
+    if np.dtype(dtype).kind == "u":
+        values = [v for v in values if v >= 0]
+    obj = np.repeat(np.array(values, dtype=dtype), step)[::step]  # step 2: a non-contiguous view
+    try:
+        want = Codes.from_indices([obj], 64)
+    except (ValueError, TypeError) as e:
+        assert _plain_ints_code(obj, 64) is None
+        with pytest.raises(type(e), match=re.escape(str(e))):
+            as_code(obj, 64)
+        return
+    got = as_code(obj, 64)
+    assert np.array_equal(got._words, want._words) and got.weights.tolist() == want.weights.tolist()
