@@ -183,9 +183,13 @@ def test_ambiguous_and_wrong_forms_raise_type_error_naming_the_routes():
 )
 def test_plain_int_queries_take_the_fast_path_to_the_same_code(values, as_tuple):
     """as_code's fast path for lists of ints agrees with the general path, errors included (reference: from_indices)."""
+    _assert_fast_path_matches_general(tuple(values) if as_tuple else list(values))
+
+
+def _assert_fast_path_matches_general(obj):
+    """as_code(obj) equals from_indices([obj]); where that raises, the fast path declines and the error is the same."""
     from sparseindex.codes import _plain_ints_code
 
-    obj = tuple(values) if as_tuple else list(values)
     try:
         want = Codes.from_indices([obj], 64)
     except (ValueError, TypeError) as e:
@@ -218,17 +222,6 @@ def test_plain_int_fast_path_refuses_bools_and_numpy_ints():
 )
 def test_integer_array_queries_take_the_fast_path_to_the_same_code(values, dtype, step):
     """as_code's fast path for 1-D integer arrays (strided too) agrees with the general path, errors included (reference: from_indices)."""
-    from sparseindex.codes import _plain_ints_code
-
     if np.dtype(dtype).kind == "u":
         values = [v for v in values if v >= 0]
-    obj = np.repeat(np.array(values, dtype=dtype), step)[::step]  # step 2: a non-contiguous view
-    try:
-        want = Codes.from_indices([obj], 64)
-    except (ValueError, TypeError) as e:
-        assert _plain_ints_code(obj, 64) is None
-        with pytest.raises(type(e), match=re.escape(str(e))):
-            as_code(obj, 64)
-        return
-    got = as_code(obj, 64)
-    assert np.array_equal(got._words, want._words) and got.weights.tolist() == want.weights.tolist()
+    _assert_fast_path_matches_general(np.repeat(np.array(values, dtype=dtype), step)[::step])  # step 2: a strided view
