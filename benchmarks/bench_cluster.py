@@ -50,7 +50,7 @@ def parse_args(argv):
     p.add_argument("--size", type=float, default=2e6, help="stored codes N (default 2e6)")
     p.add_argument("--batches", default="1,100,1000,10000", help="query batch sizes")
     p.add_argument("--bits", type=int, default=2048)
-    p.add_argument("--active", type=int, default=40)
+    p.add_argument("--weight", type=int, default=40)
     p.add_argument("--threshold", type=int, default=20)
     p.add_argument("--drop", type=int, default=10, help="bits a noisy query copy loses")
     p.add_argument("--repeats", type=int, default=5)
@@ -121,8 +121,8 @@ def render(args, machine, single_add, rows, over, elapsed, exact):
     lines = [
         "# Sharded store (ShardedStore on a local Dask cluster) against one Store",
         "",
-        f"N = {args.n:,} random {args.bits}-bit codes with {args.active} set bits; `threshold={args.threshold}`, "
-        "`segment=None`, 1 detector (as `bench_store.py`). Queries alternate noisy copies (lose "
+        f"N = {args.n:,} random {args.bits}-bit codes with {args.weight} set bits; `threshold={args.threshold}`, "
+        "`sample_size=None`, 1 detector (as `bench_store.py`). Queries alternate noisy copies (lose "
         f"{args.drop} bits) and random codes. `query_many` per batch, warm-up 2 (1 from 1,000 queries), "
         f"{args.repeats} repeats (50 for single queries); medians per query; ratio = store ÷ single Store "
         "in queries/s (above 1: faster than one Store).",
@@ -202,8 +202,8 @@ def main(argv=None):
     from sparseindex.cluster import ShardedStore
 
     started = time.perf_counter()
-    params = dict(threshold=args.threshold, segment=None, detectors=1, seed=args.seed)
-    codes = Codes.random(args.n, args.bits, args.active, seed=args.seed)
+    params = dict(threshold=args.threshold, sample_size=None, detectors=1, seed=args.seed)
+    codes = Codes.random(args.n, args.bits, args.weight, seed=args.seed)
     queries = bench_store.make_queries(codes, max(args.batch_list), args.bits, args.drop, args.seed + 7)[0]
     chunk = 250_000
     single, single_add = build(lambda: Store(args.bits, **params), codes, chunk, log, "single Store")

@@ -1,4 +1,4 @@
-"""Health benchmark: cost of a report, of a probe, and of usage counting in add.
+"""Health benchmark: cost of a report, of a measurement, and of usage counting in add.
 
 At each size N (default 10^6) a store planned with ``Store.for_target(2048,
 40, false_hit=1e-9, capacity=2N, noise=0.25)`` is filled with random codes
@@ -7,9 +7,9 @@ of 40 set bits, and this process measures:
 * ``store.health()``: a scrape-time report with memoised model figures
   (target: under 10 ms at N = 10^6), a report that recomputes the
   usage-aware estimate (``refresh=True``), and rendering it as OpenMetrics;
-* ``store.probe(10_000)`` with uniform and with usage-drawn queries, as
+* ``store.measure_false_hits(10_000)`` with uniform and with usage-drawn queries, as
   queries/s, beside ``query_many`` of the same number of random queries
-  (the peer: a probe is that plus drawing the queries and the interval);
+  (the peer: a measurement is that plus drawing the queries and the interval);
 * the cost of keeping per-bit usage counts during ``add``: the bank's
   fused sample-and-index kernel over the same batch with counting on and
   off, interleaved, medians (target: under 5% of add time).
@@ -40,24 +40,24 @@ from sparseindex.bank import DetectorBank  # noqa: E402
 
 
 def parse_args(argv):
-    p = argparse.ArgumentParser(description="Benchmark Store.health, Store.probe and usage counting in add.")
+    p = argparse.ArgumentParser(description="Benchmark Store.health, Store.measure_false_hits and usage counting in add.")
     p.add_argument("--sizes", default="1e6", help="comma-separated store sizes N (default 1e6)")
     p.add_argument("--quick", action="store_true", help="CI smoke run: N = 20,000, few repeats")
-    p.add_argument("--probe", type=int, default=10_000, help="probe queries (default 10,000)")
+    p.add_argument("--measure", type=int, default=10_000, help="measurement queries (default 10,000)")
     p.add_argument("--repeats", type=int, default=5, help="timed repeats (default 5)")
     p.add_argument("--out", default=None, help="also write the Markdown report here")
     p.add_argument("--json", default=None, help="write every sample here as JSON")
     return p.parse_args(argv)
 
 
-def run(n, probe_queries, repeats):
+def run(n, measured_queries, repeats):
     warm = Store.for_target(2048, 40, false_hit=1e-9, capacity=2 * n, noise=0.25, seed=1)
     warm.add(Codes.random(2_000, 2048, 40, seed=1))  # compile (or load) every kernel first
-    warm.health(refresh=True), warm.probe(100, seed=1), warm.probe(100, source="usage", seed=1)
+    warm.health(refresh=True), warm.measure_false_hits(100, seed=1), warm.measure_false_hits(100, source="usage", seed=1)
     codes = Codes.random(n, 2048, 40, seed=11)
     store = Store.for_target(2048, 40, false_hit=1e-9, capacity=2 * n, noise=0.25, seed=11)
     add = common.measure(lambda: store.add(codes), repeats=1, warmup=0)
-    bank_args = (store.bits, store.threshold, store.segment, store.detectors, store.seed)
+    bank_args = (store.bits, store.threshold, store.sample_size, store.detectors, store.seed)
     ids = np.arange(n, dtype=np.int64)
 
     def fused(count):
@@ -78,15 +78,15 @@ def run(n, probe_queries, repeats):
     }
     h = store.health()
     t["to_openmetrics()"] = common.measure(h.to_openmetrics, repeats=max(20, 10 * repeats), warmup=2)
-    queries = Codes.random(probe_queries, 2048, 40, seed=12)
+    queries = Codes.random(measured_queries, 2048, 40, seed=12)
     store.query_many(queries[:100])
     t["query_many peer"] = common.measure(lambda: store.query_many(queries), repeats=repeats, warmup=0,
-                                          per=probe_queries)
-    t["probe uniform"] = common.measure(lambda: store.probe(probe_queries, seed=1), repeats=repeats, warmup=1,
-                                        per=probe_queries)
-    t["probe usage"] = common.measure(lambda: store.probe(probe_queries, source="usage", seed=1),
-                                      repeats=repeats, warmup=1, per=probe_queries)
-    return {"n": n, "timings": t, "health": h, "probe": store.probe(probe_queries, seed=2)}
+                                          per=measured_queries)
+    t["measurement uniform"] = common.measure(lambda: store.measure_false_hits(measured_queries, seed=1), repeats=repeats, warmup=1,
+                                        per=measured_queries)
+    t["measurement usage"] = common.measure(lambda: store.measure_false_hits(measured_queries, source="usage", seed=1),
+                                      repeats=repeats, warmup=1, per=measured_queries)
+    return {"n": n, "timings": t, "health": h, "measurement": store.measure_false_hits(measured_queries, seed=2)}
 
 
 def report(results, record, bandwidth):
@@ -95,7 +95,7 @@ def report(results, record, bandwidth):
     for r in results:
         for name, timing in r["timings"].items():
             rows.append([f"{r['n']:,}", name, common.fmt_timing(timing)])
-    lines += [common.markdown_table(["N", "operation", "time per call (per query for probes)"], rows), ""]
+    lines += [common.markdown_table(["N", "operation", "time per call (per query for measurements)"], rows), ""]
     for r in results:
         t = r["timings"]
         on, off = t["fused kernel, usage counted"].median, t["fused kernel, usage not counted"].median
@@ -109,10 +109,10 @@ def report(results, record, bandwidth):
             f"- Usage counting in add: {100 * cost:+.1f}% of the fused kernel's time "
             f"({'meets' if cost < 0.05 else 'misses'} the 5% target); whole add "
             f"{r['n'] / t['add (whole store)'].median / 1e6:.2f} M codes/s.",
-            f"- Probe: {1 / t['probe uniform'].median:,.0f} uniform and {1 / t['probe usage'].median:,.0f} "
+            f"- Measurement: {1 / t['measurement uniform'].median:,.0f} uniform and {1 / t['measurement usage'].median:,.0f} "
             f"usage queries/s; `query_many` of the same count {1 / t['query_many peer'].median:,.0f} queries/s "
-            f"(probe / peer time {t['probe uniform'].median / t['query_many peer'].median:.2f}x).",
-            f"- Report: {r['probe']}",
+            f"(measurement / peer time {t['measurement uniform'].median / t['query_many peer'].median:.2f}x).",
+            f"- Report: {r['measurement']}",
             "",
             "```",
             str(r["health"]),
@@ -126,8 +126,8 @@ def main(argv=None):
     args = parse_args(sys.argv[1:] if argv is None else argv)
     sizes = [20_000] if args.quick else [int(float(x)) for x in args.sizes.split(",")]
     repeats = 2 if args.quick else args.repeats
-    probe = 1_000 if args.quick else args.probe
-    results = [run(n, probe, repeats) for n in sizes]
+    measurement = 1_000 if args.quick else args.measure
+    results = [run(n, measurement, repeats) for n in sizes]
     record = common.machine_record()
     bandwidth = [common.memory_bandwidth(64 if args.quick else 256, repeats=2 if args.quick else 5)]
     text = report(results, record, bandwidth)

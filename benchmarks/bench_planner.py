@@ -8,8 +8,8 @@ Usage::
 Method: every measurement runs once to warm up, then ``--repeats`` times;
 the table shows min / median / max wall time (time.perf_counter).  Planner
 requests use false_hit=1e-9 at capacity=1,000,000 and recall 0.999 unless
-the row says otherwise; the noise level changes how large a segment the
-answer needs, and the work grows with the square of that segment.  Model
+the row says otherwise; the noise level changes how large a sample size the
+answer needs, and the work grows with the square of that sample size.  Model
 rates count one evaluation per parameter set, for scalar calls and for one
 vectorised call over many parameter sets.
 """
@@ -35,7 +35,7 @@ from sparseindex.model import PlanError  # noqa: E402
 from sparseindex.planner import plan  # noqa: E402
 
 LADDER = [
-    # bits, active, noise
+    # bits, weight, noise
     (2_048, 40, 0.25),
     (10_000, 100, 0.25),
     (65_536, 300, 0.25),
@@ -83,27 +83,27 @@ def timed(fn, repeats):
 
 
 def bench_planner(ladder, repeats):
-    print(f"\nplanner: plan(bits, active, false_hit=1e-9, capacity=1e6, noise, "
+    print(f"\nplanner: plan(bits, weight, false_hit=1e-9, capacity=1e6, noise, "
           f"recall=0.999); {repeats} repeats after a warm-up")
-    head = (f"  {'bits':>9}  {'active':>6}  {'noise':>5}  {'answer':<22}"
+    head = (f"  {'bits':>9}  {'weight':>6}  {'noise':>5}  {'answer':<22}"
             f"  {'min ms':>8}  {'median ms':>9}  {'max ms':>8}")
     print(head)
     print("  " + "-" * (len(head) - 2))
     rows = []
-    for bits, active, noise in ladder:
+    for bits, weight, noise in ladder:
         def run():
             try:
-                return plan(bits, active, false_hit=1e-9, capacity=10**6,
+                return plan(bits, weight, false_hit=1e-9, capacity=10**6,
                             noise=noise, recall=0.999)
             except PlanError:
                 return None
         p = run()
         answer = ("no plan (PlanError)" if p is None else
-                  f"s={p.segment} t={p.threshold} D={p.detectors}")
+                  f"s={p.sample_size} t={p.threshold} D={p.detectors}")
         times = timed(run, repeats)
         ms = [1e3 * t for t in times]
-        rows.append((bits, active, noise, answer, min(ms), statistics.median(ms), max(ms)))
-        print(f"  {bits:>9,}  {active:>6,}  {noise:>5g}  {answer:<22}"
+        rows.append((bits, weight, noise, answer, min(ms), statistics.median(ms), max(ms)))
+        print(f"  {bits:>9,}  {weight:>6,}  {noise:>5g}  {answer:<22}"
               f"  {min(ms):>8.1f}  {statistics.median(ms):>9.1f}  {max(ms):>8.1f}")
     return rows
 

@@ -8,7 +8,7 @@ cost model whose one constant, ``bank.VERIFY_COST_POSTINGS``, is what one
 candidate costs in postings counted. This script measures that constant:
 
 * one store of N random codes (2048 bits, 40 set, ``threshold=20``,
-  ``segment=None``), queried one at a time on one thread;
+  ``sample_size=None``), queried one at a time on one thread;
 * for each of several ``verify_cost`` settings (infinity = no filtering),
   the time of each query beside the postings it counted and the candidates
   it checked (both recomputed here from the plan and the postings);
@@ -48,7 +48,7 @@ import numba  # noqa: E402
 from sparseindex import Codes, Store, _kernels  # noqa: E402
 from sparseindex.bank import VERIFY_COST_POSTINGS  # noqa: E402
 
-BITS, ACTIVE, THRESHOLD = 2048, 40, 20
+BITS, WEIGHT, THRESHOLD = 2048, 40, 20
 SETTINGS = [4.0, 16.0, 64.0, 256.0, 1024.0, 4096.0, math.inf]
 
 
@@ -72,11 +72,11 @@ def _work(bank, q_bits, cost, n_rows):
 def run(args):
     n = 20_000 if args.quick else int(args.n)
     n_q = 12 if args.quick else args.queries
-    codes = Codes.random(n, BITS, ACTIVE, seed=11)
+    codes = Codes.random(n, BITS, WEIGHT, seed=11)
     store = Store(BITS, threshold=THRESHOLD, seed=5)
     store.add(codes)
     bank = store._bank
-    queries = Codes.random(n_q * len(SETTINGS), BITS, ACTIVE, seed=12)
+    queries = Codes.random(n_q * len(SETTINGS), BITS, WEIGHT, seed=12)
     indptr, q_all = queries._csr()
     old_threads = numba.get_num_threads()
     numba.set_num_threads(1)  # the serial kernel: one thread's costs

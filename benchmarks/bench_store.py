@@ -1,7 +1,7 @@
 """Store benchmark: add rate, single and batch query time, memory per code.
 
 Builds stores of random codes (2048 bits, 40 set bits) over a size ladder
-(default N = 10^4, 10^5, 10^6) with ``segment=None, threshold=20`` and, on
+(default N = 10^4, 10^5, 10^6) with ``sample_size=None, threshold=20`` and, on
 the same data and the same queries, times:
 
 * the store: ``add`` into an empty store and appending a second batch,
@@ -50,7 +50,7 @@ def parse_args(argv):
     p.add_argument("--sizes", default="1e4,1e5,1e6", help="comma-separated store sizes N (default 1e4,1e5,1e6)")
     p.add_argument("--quick", action="store_true", help="CI smoke run: tiny sizes, few queries and repeats")
     p.add_argument("--bits", type=int, default=2048, help="code width n (default 2048)")
-    p.add_argument("--active", type=int, default=40, help="set bits per code a (default 40)")
+    p.add_argument("--weight", type=int, default=40, help="set bits per code a (default 40)")
     p.add_argument("--threshold", type=int, default=20, help="detector threshold (default 20)")
     p.add_argument("--drop", type=int, default=10, help="bits a noisy query drops and replaces (default 10)")
     p.add_argument("--single", type=int, default=500, help="queries timed one at a time on the store (default 500)")
@@ -76,7 +76,7 @@ def parse_args(argv):
         p.error(f"--sizes={args.sizes!r}: expected comma-separated numbers such as 1e4,1e5")
     if not args.size_list or min(args.size_list) < 1:
         p.error(f"--sizes={args.sizes!r}: every size must be >= 1")
-    if not 0 <= args.drop <= args.active - args.threshold:
+    if not 0 <= args.drop <= args.weight - args.threshold:
         p.error(f"--drop={args.drop}: a noisy copy must keep at least threshold={args.threshold} bits")
     return args
 
@@ -96,8 +96,8 @@ def make_queries(codes, count, bits, drop, seed):
     rng = np.random.default_rng(seed)
     n_noisy = (count + 1) // 2
     sources = rng.choice(len(codes), size=n_noisy, replace=len(codes) < n_noisy)
-    active = len(codes[0])
-    randoms = Codes.random(count - n_noisy, bits, active, seed=seed + 1).to_indices()
+    weight = len(codes[0])
+    randoms = Codes.random(count - n_noisy, bits, weight, seed=seed + 1).to_indices()
     rows, source_of = [], []
     for k in range(count):
         if k % 2 == 0:
@@ -176,15 +176,15 @@ def peer_count(n, budget, lo, hi):
 def bench_size(n, args, bandwidth, log):
     from sparseindex import Codes, Store
 
-    bits, active, threshold = args.bits, args.active, args.threshold
+    bits, weight, threshold = args.bits, args.weight, args.threshold
     out = {"N": n}
     log(f"N={n}: making codes")
-    codes = Codes.random(n, bits, active, seed=args.seed * 1000 + 11)
+    codes = Codes.random(n, bits, weight, seed=args.seed * 1000 + 11)
     n_append = max(1, int(round(n * args.append_fraction)))
-    second = Codes.random(n_append, bits, active, seed=args.seed * 1000 + 12)
+    second = Codes.random(n_append, bits, weight, seed=args.seed * 1000 + 12)
 
     def new_store():
-        return Store(bits, threshold=threshold, segment=None, detectors=1, seed=args.seed)
+        return Store(bits, threshold=threshold, sample_size=None, detectors=1, seed=args.seed)
 
     # add: into an empty store, then a second batch into the now non-empty one
     log(f"N={n}: add ({args.add_repeats} repeats)")
@@ -412,9 +412,9 @@ def render(results, machine, bandwidth, args, elapsed):
     lines = [
         "# sparseindex Store benchmark",
         "",
-        f"Random codes of {args.bits} bits with {args.active} set bits; `Store(bits={args.bits}, "
-        f"threshold={args.threshold}, segment=None, detectors=1)`. Queries alternate between noisy copies of "
-        f"stored codes (keep {args.active - args.drop} of the {args.active} bits, add {args.drop} others) and "
+        f"Random codes of {args.bits} bits with {args.weight} set bits; `Store(bits={args.bits}, "
+        f"threshold={args.threshold}, sample_size=None, detectors=1)`. Queries alternate between noisy copies of "
+        f"stored codes (keep {args.weight - args.drop} of the {args.weight} bits, add {args.drop} others) and "
         "random codes. Times are per query (per code for add): median (min–max) over the repeats, after a "
         "warm-up. Ratios use medians.",
         "",
@@ -530,10 +530,10 @@ def warm_up(args, log):
     from sparseindex import Codes, Store
 
     t0 = time.perf_counter()
-    store = Store(args.bits, threshold=args.threshold, segment=None, detectors=1, seed=args.seed)
-    store.add(Codes.random(2000, args.bits, args.active, seed=1))
-    store.add(Codes.random(200, args.bits, args.active, seed=2))
-    q = Codes.random(8, args.bits, args.active, seed=3)
+    store = Store(args.bits, threshold=args.threshold, sample_size=None, detectors=1, seed=args.seed)
+    store.add(Codes.random(2000, args.bits, args.weight, seed=1))
+    store.add(Codes.random(200, args.bits, args.weight, seed=2))
+    q = Codes.random(8, args.bits, args.weight, seed=3)
     store.query(q[0])
     store.query_many(q)
     np.bitwise_count(q.words & q.words[0]).sum(axis=1)

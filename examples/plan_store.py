@@ -14,7 +14,7 @@ query work, then shows the planner refusing a target it cannot meet.
 Run::
 
     python examples/plan_store.py
-    python examples/plan_store.py --bits 2048 --active 40 --noise 0.25 --capacity 1e5 1e6
+    python examples/plan_store.py --bits 2048 --weight 40 --noise 0.25 --capacity 1e5 1e6
 """
 
 from __future__ import annotations
@@ -35,7 +35,7 @@ def memory_per_code(bits: int, postings: int) -> int:
 def main(argv=None) -> None:
     parser = argparse.ArgumentParser(description="Size a store from false-hit and recall targets.")
     parser.add_argument("--bits", type=int, default=4096, help="code width (default 4096)")
-    parser.add_argument("--active", type=int, default=80, help="set bits per code (default 80)")
+    parser.add_argument("--weight", type=int, default=80, help="set bits per code (default 80)")
     parser.add_argument("--noise", type=float, default=0.3, help="fraction of set bits a query may lack (default 0.3)")
     parser.add_argument("--recall", type=float, default=0.999, help="least recall at that noise (default 0.999)")
     parser.add_argument("--false-hit", type=float, default=1e-9, help="most false hits per query (default 1e-9)")
@@ -43,26 +43,26 @@ def main(argv=None) -> None:
                         help="codes to plan for (default 1e5 1e6 1e7 5e7)")
     args = parser.parse_args(argv)
 
-    print(f"Kelderwick print archive: {args.bits:,}-bit codes with {args.active} set bits; at most "
+    print(f"Kelderwick print archive: {args.bits:,}-bit codes with {args.weight} set bits; at most "
           f"{args.false_hit:g} false hits per query; recall >= {args.recall:g} when a query lacks "
           f"{args.noise:.0%} of a code's bits")
     print()
-    head = (f"{'codes':>12}  {'segment':>7}  {'threshold':>9}  {'detectors':>9}  {'capacity':>14}  "
+    head = (f"{'codes':>12}  {'sample size':>11}  {'threshold':>9}  {'detectors':>9}  {'limit':>14}  "
             f"{'recall':>9}  {'memory':>10}  {'updates/query':>13}  {'~time':>8}")
     print(head)
     print("-" * len(head))
     for target in args.capacity:
         count = int(target)
         try:
-            p = plan(args.bits, args.active, false_hit=args.false_hit, capacity=count, noise=args.noise,
+            p = plan(args.bits, args.weight, false_hit=args.false_hit, capacity=count, noise=args.noise,
                      recall=args.recall)
         except PlanError as exc:
             print(f"{count:>12,}  no plan: {' '.join(str(exc).split())}")
             continue
         memory = memory_per_code(args.bits, p.postings_per_code) * count
         work_ms = p.updates_per_query * NS_PER_UPDATE * 1e-6
-        capacity = "unbounded" if not math.isfinite(p.capacity) else f"{int(p.capacity):,}"
-        print(f"{count:>12,}  {p.segment:>7}  {p.threshold:>9}  {p.detectors:>9}  {capacity:>14}  "
+        limit = "unbounded" if not math.isfinite(p.limit) else f"{int(p.limit):,}"
+        print(f"{count:>12,}  {p.sample_size:>11}  {p.threshold:>9}  {p.detectors:>9}  {limit:>14}  "
               f"{p.recall:>9.6f}  {memory / 2**30:>6.2f} GiB  {p.updates_per_query:>13.3g}  {work_ms:>5.2f} ms")
     print()
     print("memory: packed codes + 2-byte postings + 5 bytes of bookkeeping per code; per query: counter updates")
@@ -70,7 +70,7 @@ def main(argv=None) -> None:
     print()
     too_noisy = min(0.999, args.noise + 0.6)
     try:
-        plan(args.bits, args.active, false_hit=args.false_hit, capacity=int(args.capacity[-1]), noise=too_noisy,
+        plan(args.bits, args.weight, false_hit=args.false_hit, capacity=int(args.capacity[-1]), noise=too_noisy,
              recall=args.recall)
     except PlanError as exc:
         print(f"asking for recall at noise {too_noisy:g} instead: PlanError: {' '.join(str(exc).split())}")

@@ -2,9 +2,9 @@
 
 The scenario (invented): the Brackenfold depot runs a fleet of 64 warehouse
 robots. Every route a robot drives is logged as a route fingerprint, a
-2048-bit code with 40 set bits (one per hashed aisle segment and turn). The
+2048-bit code with 40 set bits (one per hashed aisle leg and turn). The
 depot keeps 100,000 logged routes in a ``sparseindex.Store``. When a robot
-re-drives a known route it takes detours: a quarter of the segments differ.
+re-drives a known route it takes detours: a quarter of the legs differ.
 Given the fingerprint of such a re-run, which logged route is it?
 
 This script stores 100,000 random fingerprints, makes 1,000 noisy copies of
@@ -29,10 +29,10 @@ import numpy as np
 from sparseindex import Codes, Store
 
 BITS = 2048  # width of a route fingerprint
-ACTIVE = 40  # set bits per fingerprint
+WEIGHT = 40  # set bits per fingerprint
 ROUTES = 100_000  # logged routes kept in the store (default of --routes)
 RERUNS = 1_000  # detoured re-runs to recognise (default of --reruns)
-DETOUR = ACTIVE // 4  # bits a re-run drops and replaces
+DETOUR = WEIGHT // 4  # bits a re-run drops and replaces
 THRESHOLD = 20  # shared bits that make a logged route a hit
 ROBOTS = 64
 
@@ -64,19 +64,19 @@ def main(argv=None) -> None:
 
     # warm-up: the first calls compile the kernels (or load them from numba's cache)
     warm = Store(BITS, threshold=THRESHOLD, seed=11)
-    warm.add(Codes.random(100, BITS, ACTIVE, seed=1))
+    warm.add(Codes.random(100, BITS, WEIGHT, seed=1))
     warm.query(warm.get([0]).to_indices()[0])
     warm.query_many(warm.get([1, 2]))
     t_warm = time.perf_counter() - started
 
     # the route log: one fingerprint per logged route; robot i drives route ids i, i + 64, ...
-    routes = Codes.random(routes_n, BITS, ACTIVE, seed=7)
+    routes = Codes.random(routes_n, BITS, WEIGHT, seed=7)
     store = Store(BITS, threshold=THRESHOLD, seed=11)
     t0 = time.perf_counter()
     route_ids = store.add(routes)
     t_add = time.perf_counter() - t0
 
-    # 1,000 re-runs of randomly chosen logged routes, each with a quarter of its segments detoured
+    # 1,000 re-runs of randomly chosen logged routes, each with a quarter of its legs detoured
     sources = rng.choice(routes_n, size=reruns_n, replace=False)
     reruns = detoured_copies(routes, sources, DETOUR, rng)
     rerun_bits = reruns.to_indices()
@@ -96,11 +96,11 @@ def main(argv=None) -> None:
     best_overlap = np.array([h.overlaps[0] if len(h) else 0 for h in hits])
 
     print(f"Brackenfold depot: {routes_n:,} logged routes of {ROBOTS} robots, "
-          f"{BITS}-bit fingerprints with {ACTIVE} set bits")
+          f"{BITS}-bit fingerprints with {WEIGHT} set bits")
     print(f"store: {store!r}")
     print(f"  added in {t_add:.2f} s ({routes_n / t_add:,.0f} routes/s), "
           f"{store.nbytes / 2**20:.1f} MiB ({store.nbytes / len(store):.0f} bytes per route)")
-    print(f"re-runs: {reruns_n:,}, each keeping {ACTIVE - DETOUR} of its route's {ACTIVE} bits "
+    print(f"re-runs: {reruns_n:,}, each keeping {WEIGHT - DETOUR} of its route's {WEIGHT} bits "
           f"plus {DETOUR} detour bits; a hit needs >= {THRESHOLD} shared bits")
     print(f"  recall (logged route among the hits): {found.mean():.3f} ({int(found.sum())} of {reruns_n})")
     print(f"  false hits per query: {false_hits.mean():.4f} ({int(false_hits.sum())} in all)")

@@ -15,8 +15,8 @@ Examples
 
 from . import model
 from .codes import Codes
-from .dedupe import DedupeSummary, dedupe  # eager: the function shares its name with the submodule
-from .errors import CapacityWarning, FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
+from .near_duplicates import NearDuplicateSummary, label_near_duplicates
+from .errors import SaturationWarning, FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
 from .model import PlanError
 from .planner import Plan, plan
 from .store import BatchHits, Hits, Store
@@ -26,7 +26,7 @@ __version__ = "0.1.0"
 #: Names imported on first use (PEP 562), so ``import sparseindex`` stays quick.
 _LAZY = {
     "Health": ".health",
-    "ProbeResult": ".health",
+    "FalseHitMeasurement": ".health",
 }
 
 
@@ -44,5 +44,5 @@ def __dir__():
     return sorted(set(globals()) | set(_LAZY))
 
 __all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model",
-    "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "CapacityWarning",
-    "Health", "ProbeResult", "dedupe", "DedupeSummary", "__version__"]
+    "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "SaturationWarning",
+    "Health", "FalseHitMeasurement", "label_near_duplicates", "NearDuplicateSummary", "__version__"]

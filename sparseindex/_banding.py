@@ -26,7 +26,7 @@ uncertainty is which true pairs the bands missed, which :func:`s_curve`
 predicts.
 
 Kernels here compute only (arrays in, arrays out, no validation); the
-wrappers below and :mod:`sparseindex.dedupe` validate.
+wrappers below and :mod:`sparseindex.near_duplicates` validate.
 """
 
 from __future__ import annotations
@@ -218,7 +218,7 @@ def choose_bands(worst_jaccard, recall, *, codes, set_bits, moments, threads=Non
 
     Examples
     --------
-    >>> m = [1.0e-2, 2.2e-4, 6.3e-6, 2.1e-7, 8.5e-9, 4.0e-10]  # random 40-of-2048 codes
+    >>> m = [1.0e-2, 2.2e-4, 6.3e-6, 2.1e-7, 8.5e-9, 4.0e-10]  # random 2048-bit codes of weight 40
     >>> c = choose_bands(2 / 3, 0.99, codes=10**6, set_bits=4 * 10**7, moments=m, threads=2)
     >>> (c.bands, c.rows, c.recall >= 0.99)
     (14, 3, True)

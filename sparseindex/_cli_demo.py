@@ -3,7 +3,7 @@
 Runs :func:`sparseindex.demo.run`: plans a store from targets, builds it,
 recalls noisy and partial queries against the model's prediction, catches
 re-uploaded near-copies, follows its health past the warning level and
-past capacity, saves it and serves it memory-mapped, and draws the headroom
+past its limit, saves it and serves it memory-mapped, and draws the headroom
 curve (when matplotlib is installed). ``add_parser(subparsers)`` registers
 the subcommand; ``run(args)`` carries it out and returns the exit status: 0,
 or 2 with one line on stderr for a bad option.
@@ -34,16 +34,16 @@ def add_parser(subparsers):
 
     p = subparsers.add_parser(
         "demo",
-        help="run the whole job on invented data: plan, build, recall, dedupe, health, save, plot",
+        help="run the whole job on invented data: plan, build, recall, near-duplicates, health, save, plot",
         description=(
             "An invented weaving mill catalogues its bolts of cloth as sparse 2048-bit codes (data made on "
             "the fly from --seed). The demo plans a store for SIZE bolts from a false-hit and a recall "
             "target, builds it, recognises bolts from noisy and partial rescans (measured recall and false "
             "hits beside the model's prediction), catches re-uploaded near-copies, follows the store's "
-            "health as it fills past the warning level and past capacity, saves it and serves it "
+            "health as it fills past the warning level and past its limit, saves it and serves it "
             "memory-mapped, and draws the headroom curve when matplotlib is installed."),
         epilog=(
-            "The store is filled to 110% of its planned capacity, which can be several times SIZE. At the "
+            "The store is filled to 110% of the model's limit, which can be several times SIZE. At the "
             "default size: about 45 s on 2 cores on the first run (most of it compiling the kernels), about "
             "15 s after. A hit is probabilistic evidence, not proof of identity: do not let a hit alone decide "
             "access, money or identity."),

@@ -1,6 +1,6 @@
 """The ``sparseindex health`` subcommand: how full is a saved store.
 
-Opens the store memory-mapped and read-only, optionally probes it, and
+Opens the store memory-mapped and read-only, optionally measures its false hits, and
 prints the :class:`~sparseindex.health.Health` report as text (default),
 JSON or OpenMetrics; ``--plot`` draws the predicted false-hit chance per
 query against the number of stored codes (needs matplotlib, the ``plot``
@@ -26,8 +26,8 @@ def add_parser(subparsers):
     --------
     >>> import argparse
     >>> sub = argparse.ArgumentParser(prog="sparseindex").add_subparsers()
-    >>> args = add_parser(sub).parse_args(["fleet.sidx", "--probe", "1,000"])
-    >>> args.path, args.probe, args.source, args.json, args.plot
+    >>> args = add_parser(sub).parse_args(["fleet.sidx", "--measure", "1,000"])
+    >>> args.path, args.measure, args.source, args.json, args.plot
     ('fleet.sidx', 1000, 'uniform', False, None)
     """
     p = subparsers.add_parser(
@@ -35,7 +35,7 @@ def add_parser(subparsers):
         help="report the fill level and false-hit headroom of a saved store",
         description=(
             "Open the store saved at PATH (memory-mapped, read-only) and report its items, "
-            "capacity at the false-hit target under the uniform and the usage-aware model, "
+            "the limit (codes at the false-hit target) under the uniform and the usage-aware model, "
             "headroom, bit usage, code weights and status."),
         epilog=(
             "A hit is probabilistic evidence, not proof of identity: do not let a hit alone "
@@ -45,10 +45,10 @@ def add_parser(subparsers):
     fmt = p.add_mutually_exclusive_group()
     fmt.add_argument("--json", action="store_true", help="print the report as JSON")
     fmt.add_argument("--openmetrics", action="store_true", help="print the report in the OpenMetrics text format")
-    p.add_argument("--probe", type=_count, default=0, metavar="N", help="run N random unrelated queries first")
+    p.add_argument("--measure", type=_count, default=0, metavar="N", help="run N random unrelated queries first")
     p.add_argument("--source", choices=("uniform", "usage"), default="uniform",
-                   help="probe queries: uniform random bits, or drawn from the store's bit usage")
-    p.add_argument("--seed", type=_count, default=None, help="seed of the probe queries")
+                   help="measurement queries: uniform random bits, or drawn from the store's bit usage")
+    p.add_argument("--seed", type=_count, default=None, help="seed of the measurement queries")
     p.add_argument("--false-hit", type=_number, default=None, metavar="F",
                    help="false-hit target per query (default: the store's plan)")
     p.add_argument("--warn-fraction", type=_number, default=None, metavar="W",
@@ -66,7 +66,7 @@ def _fail(message: str) -> int:
 def run(args) -> int:
     """Carry out ``sparseindex health``; return the exit status.
 
-    Opens ``args.path`` memory-mapped and read-only, probes it if asked,
+    Opens ``args.path`` memory-mapped and read-only, measures its false hits if asked,
     prints the report (text, JSON or OpenMetrics) and draws the plot if
     asked; a missing or bad file or a bad option prints one line on stderr
     and returns 2.
@@ -78,7 +78,7 @@ def run(args) -> int:
     >>> store = Store.for_target(512, 16, false_hit=1e-4, capacity=5_000, seed=3)
     >>> _ = store.add(Codes.random(3_000, 512, 16, seed=3))
     >>> path = os.path.join(tempfile.mkdtemp(), "orchard.sidx"); store.save(path)
-    >>> args = argparse.Namespace(path=path, json=False, openmetrics=False, probe=0, source="uniform", seed=None,
+    >>> args = argparse.Namespace(path=path, json=False, openmetrics=False, measure=0, source="uniform", seed=None,
     ...                           false_hit=None, warn_fraction=None, plot=None)
     >>> out = io.StringIO()
     >>> with contextlib.redirect_stdout(out):
@@ -90,8 +90,8 @@ def run(args) -> int:
     """
     from .store import Store
 
-    if args.probe < 0:
-        return _fail(f"--probe {args.probe} must be >= 0")
+    if args.measure < 0:
+        return _fail(f"--measure {args.measure} must be >= 0")
     try:
         store = Store.load(args.path, mmap=True)
     except FileNotFoundError:
@@ -99,8 +99,8 @@ def run(args) -> int:
     except (StoreFormatError, OSError) as exc:
         return _fail(f"cannot read {args.path!r}: {exc}")
     try:
-        if args.probe:
-            store.probe(args.probe, source=args.source, seed=args.seed)
+        if args.measure:
+            store.measure_false_hits(args.measure, source=args.source, seed=args.seed)
         report = store.health(false_hit=args.false_hit, warn_fraction=args.warn_fraction)
     except ValueError as exc:
         return _fail(str(exc))
@@ -125,7 +125,7 @@ def plot_headroom(store, report, path) -> str:
     """Draw predicted false-hit chance per query against stored codes; return the path.
 
     Uniform and usage-aware model curves, the target, the store's position
-    and the latest probe with its 95% interval (or its upper bound). Needs
+    and the latest measurement with its 95% interval (or its upper bound). Needs
     matplotlib (``pip install 'sparseindex[plot]'``); ImportError without it.
 
     Examples
@@ -152,8 +152,8 @@ def plot_headroom(store, report, path) -> str:
 
     h = report
     top = max(10.0, 4.0 * max(h.items, 1))
-    if h.capacity is not None and math.isfinite(h.capacity):
-        top = max(top, 4.0 * h.capacity)
+    if h.limit is not None and math.isfinite(h.limit):
+        top = max(top, 4.0 * h.limit)
     x = np.unique(np.logspace(0, math.log10(top), 200).astype(np.int64))
     fig, ax = plt.subplots(figsize=(7, 4.5), dpi=110)
     if h.per_code_uniform is not None:
@@ -164,18 +164,18 @@ def plot_headroom(store, report, path) -> str:
                 color="tab:orange", linestyle="--")
     if h.target_false_hit is not None:
         ax.axhline(h.target_false_hit, color="tab:red", linestyle="--", label=f"target {h.target_false_hit:g}")
-    if h.capacity is not None and math.isfinite(h.capacity):
-        ax.axvline(h.capacity, color="tab:red", linestyle=":", label=f"capacity {int(h.capacity):,}")
+    if h.limit is not None and math.isfinite(h.limit):
+        ax.axvline(h.limit, color="tab:red", linestyle=":", label=f"limit {int(h.limit):,}")
     if h.false_hit_now is not None and h.items:
         ax.plot([h.items], [h.false_hit_now], "o", color="black", label=f"now: {h.items:,} codes")
-    if h.probe is not None:
-        pr = h.probe
+    if h.measurement is not None:
+        pr = h.measurement
         if pr.queries_hit:
             ax.errorbar([pr.items], [pr.rate], yerr=[[pr.rate - pr.low], [pr.high - pr.rate]], fmt="s",
-                        color="tab:green", capsize=4, label=f"probe ({pr.queries:,} {pr.source} queries)")
+                        color="tab:green", capsize=4, label=f"measurement ({pr.queries:,} {pr.source} queries)")
         else:
             ax.plot([pr.items], [pr.upper], "v", color="tab:green",
-                    label=f"probe upper bound ({pr.queries:,} queries, no hit)")
+                    label=f"measurement upper bound ({pr.queries:,} queries, no hit)")
     ax.set_xscale("log")
     ax.set_yscale("log")
     ax.set_xlabel("codes stored")

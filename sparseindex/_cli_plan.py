@@ -53,14 +53,14 @@ def add_parser(subparsers):
     Examples
     --------
     >>> sub = argparse.ArgumentParser(prog="sparseindex").add_subparsers()
-    >>> args = add_parser(sub).parse_args(["--bits", "2048", "--active", "40", "--false-hit", "1e-9",
+    >>> args = add_parser(sub).parse_args(["--bits", "1536", "--weight", "30", "--false-hit", "1e-9",
     ...                                    "--capacity", "1,000,000"])
     >>> args.bits, args.capacity, args.noise, args.recall, args.max_detectors
-    (2048, 1000000, 0.0, 0.999, 8)
+    (1536, 1000000, 0.0, 0.999, 8)
     """
     p = subparsers.add_parser(
         "plan",
-        help="choose segment, threshold and detectors for a false-hit target",
+        help="choose sample size, threshold and detectors for a false-hit target",
         description=(
             "Find the cheapest detector configuration (fewest postings per "
             "stored code) for which a store of CAPACITY codes keeps the chance "
@@ -70,7 +70,7 @@ def add_parser(subparsers):
     )
     p.add_argument("--bits", type=_count, required=True,
                    help="code width in bits")
-    p.add_argument("--active", type=_count, required=True,
+    p.add_argument("--weight", type=_count, required=True,
                    help="set bits per code")
     p.add_argument("--false-hit", type=_number, required=True, dest="false_hit",
                    help="largest chance of a false hit per query, e.g. 1e-9")
@@ -115,18 +115,18 @@ def _fmt_bytes(n):
 
 def _table(best):
     """The chosen plan and its alternatives as aligned text with units."""
-    heads = [("", ""), ("segment", "[bits]"), ("threshold", "[bits]"),
+    heads = [("", ""), ("sample_size", "[bits]"), ("threshold", "[bits]"),
              ("detectors", "[/code]"), ("postings", "[/code]"),
              ("false hits", "[/code]"), ("false hits", "[/query]"),
-             ("recall", ""), ("capacity", "[codes]")]
+             ("recall", ""), ("limit", "[codes]")]
     rows = []
     for rank, p in enumerate((best,) + tuple(best.alternatives)):
         rows.append([
             "chosen" if rank == 0 else f"option {rank + 1}",
-            str(p.segment), str(p.threshold), str(p.detectors),
+            str(p.sample_size), str(p.threshold), str(p.detectors),
             str(p.postings_per_code),
             f"{p.false_hit_per_code:.3g}", f"{p.false_hit_per_query:.3g}",
-            _fmt_recall(p), _fmt_count(p.capacity),
+            _fmt_recall(p), _fmt_count(p.limit),
         ])
     widths = [max(len(h[0]), len(h[1]), *(len(r[i]) for r in rows))
               for i, h in enumerate(heads)]
@@ -144,11 +144,11 @@ def _table(best):
 
 def _report(best):
     lines = [
-        f"sparseindex plan: {best.bits:,}-bit codes with {best.active:,} set bits",
+        f"sparseindex plan: {best.bits:,}-bit codes with {best.weight:,} set bits",
         f"  target: at most {best.target_false_hit:g} false hits per query with "
         f"{best.target_capacity:,} codes stored",
         f"          recall at least {best.target_recall:g} when a query lacks "
-        f"{best.lost_bits} of the {best.active} set bits (noise {best.noise:g}), "
+        f"{best.lost_bits} of the {best.weight} set bits (noise {best.noise:g}), "
         f"at most {best.max_detectors} detectors",
         "",
     ]
@@ -156,7 +156,7 @@ def _report(best):
     postings = best.postings_per_code * best.target_capacity
     lines += [
         "",
-        f"  capacity: stored codes at which false hits per query reach the target",
+        f"  limit: stored codes at which false hits per query reach the target",
         f"  at {best.target_capacity:,} codes: {postings:,} postings "
         f"(~{_fmt_bytes(postings * _POSTING_BYTES)} as uint16 postings), "
         f"~{best.updates_per_query:,.0f} counter updates per query",
@@ -172,7 +172,7 @@ def run(args):
 
     Examples
     --------
-    >>> args = argparse.Namespace(bits=2048, active=40, false_hit=1e-9, capacity=10**6, noise=0.25,
+    >>> args = argparse.Namespace(bits=1536, weight=30, false_hit=1e-9, capacity=10**6, noise=0.25,
     ...                           recall=0.999, max_detectors=8, json=False)
     >>> import contextlib, io
     >>> out = io.StringIO()
@@ -180,12 +180,12 @@ def run(args):
     ...     status = run(args)
     >>> lines = out.getvalue().splitlines()
     >>> status, lines[0], [line.split()[1:4] for line in lines if "chosen" in line]
-    (0, 'sparseindex plan: 2,048-bit codes with 40 set bits', [['21', '12', '1']])
+    (0, 'sparseindex plan: 1,536-bit codes with 30 set bits', [['20', '12', '1']])
     >>> run(argparse.Namespace(**{**vars(args), "noise": 0.95}))   # no plan reaches that recall
     2
     """
     try:
-        best = plan(args.bits, args.active, false_hit=args.false_hit,
+        best = plan(args.bits, args.weight, false_hit=args.false_hit,
                     capacity=args.capacity, noise=args.noise, recall=args.recall,
                     max_detectors=args.max_detectors)
     except (PlanError, ValueError) as exc:

@@ -223,8 +223,8 @@ def unpack_indices(words, weights):
 
 
 @kernel
-def random_words(rows, bits, active, seed):
-    """``rows`` random packed codes of exactly ``active`` distinct set bits.
+def random_words(rows, bits, weight, seed):
+    """``rows`` random packed codes of exactly ``weight`` distinct set bits.
 
     Floyd's algorithm (Bentley & Floyd, "A sample of brilliance", CACM
     1987) with a splitmix64 stream per row keyed on ``(seed, row)``: uniform
@@ -234,7 +234,7 @@ def random_words(rows, bits, active, seed):
     out = np.zeros((rows, n_words), dtype=np.uint64)
     for r in range(rows):
         state = _detector_state(seed, r, 0)
-        for j in range(bits - active, bits):
+        for j in range(bits - weight, bits):
             state, x = _rng_next(state)
             v = np.int64(x % np.uint64(j + 1))
             bit = np.uint64(1) << np.uint64(v & 63)
@@ -271,13 +271,13 @@ def _sample_into(row_bits, w, take, seed, code_id, j, out):
 
 
 @kernel
-def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
+def sample_detectors(indptr, indices, code_ids, detectors, sample_size, seed):
     """Sample each code's detector bits.
 
-    Detector ``j`` of the code with id ``c`` draws ``min(segment, weight)``
+    Detector ``j`` of the code with id ``c`` draws ``min(sample_size, weight)``
     of the code's set bits by a partial Fisher-Yates shuffle driven by a
     splitmix64 stream keyed on ``(seed, c, j)`` only, so samples do not
-    depend on batching or on where the code is stored. ``segment <= 0``
+    depend on batching or on where the code is stored. ``sample_size <= 0``
     means every set bit. Returns ``(det_indptr, det_bits)`` over
     ``rows * detectors`` detectors in row-major order, each sample sorted.
     """
@@ -286,7 +286,7 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
     det_indptr = np.zeros(n_det + 1, dtype=np.int64)
     for r in range(rows):
         w = indptr[r + 1] - indptr[r]
-        take = w if (segment <= 0 or segment >= w) else segment
+        take = w if (sample_size <= 0 or sample_size >= w) else sample_size
         for j in range(detectors):
             d = r * detectors + j
             det_indptr[d + 1] = det_indptr[d] + take
@@ -313,7 +313,7 @@ def sample_detectors(indptr, indices, code_ids, detectors, segment, seed):
 
 
 @kernel
-def _build_chunk(words, code_ids, r0, r1, first_row, detectors, segment, seed, bits, block_span, post, post_base,
+def _build_chunk(words, code_ids, r0, r1, first_row, detectors, sample_size, seed, bits, block_span, post, post_base,
                  block_indptr, block_lo, block_hi, block_base, usage, weight_hist, count_usage):
     """Sample and index rows r0..r1-1 of ``words`` into preallocated tables.
 
@@ -347,7 +347,7 @@ def _build_chunk(words, code_ids, r0, r1, first_row, detectors, segment, seed, b
             for t in range(w):
                 usage[row_bits[t]] += 1
             weight_hist[w] += 1
-        take = w if (segment <= 0 or segment >= w) else segment
+        take = w if (sample_size <= 0 or sample_size >= w) else sample_size
         if take > max_sample:
             max_sample = take
         for j in range(detectors):
@@ -366,7 +366,7 @@ def _build_chunk(words, code_ids, r0, r1, first_row, detectors, segment, seed, b
         block_indptr[block_base + k, bits] = pos
     for r in range(r0, r1):
         w = _row_bits(words, r, row_bits)
-        take = w if (segment <= 0 or segment >= w) else segment
+        take = w if (sample_size <= 0 or sample_size >= w) else sample_size
         for j in range(detectors):
             d = (first_row + r) * detectors + j
             k = d // block_span - first_block
@@ -380,7 +380,7 @@ def _build_chunk(words, code_ids, r0, r1, first_row, detectors, segment, seed, b
 
 
 @kernel
-def build_blocks_serial(words, code_ids, first_row, detectors, segment, seed, bits, block_span, chunk_rows,
+def build_blocks_serial(words, code_ids, first_row, detectors, sample_size, seed, bits, block_span, chunk_rows,
                         post, post_starts, block_indptr, block_lo, block_hi, block_starts, usage, weight_hist,
                         count_usage):
     """:func:`build_blocks_parallel` on the calling thread (one chunk: no parallel start-up cost)."""
@@ -388,7 +388,7 @@ def build_blocks_serial(words, code_ids, first_row, detectors, segment, seed, bi
     biggest = np.zeros(n_chunks, dtype=np.int64)
     for c in range(n_chunks):
         biggest[c] = _build_chunk(
-            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, segment, seed, bits,
+            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, sample_size, seed, bits,
             block_span, post, post_starts[c], block_indptr, block_lo, block_hi, block_starts[c], usage[c],
             weight_hist[c], count_usage,
         )
@@ -396,7 +396,7 @@ def build_blocks_serial(words, code_ids, first_row, detectors, segment, seed, bi
 
 
 @parallel_kernel
-def build_blocks_parallel(words, code_ids, first_row, detectors, segment, seed, bits, block_span, chunk_rows,
+def build_blocks_parallel(words, code_ids, first_row, detectors, sample_size, seed, bits, block_span, chunk_rows,
                           post, post_starts, block_indptr, block_lo, block_hi, block_starts, usage, weight_hist,
                           count_usage):
     """:func:`_build_chunk` over chunks of rows in parallel, into shared tables.
@@ -411,7 +411,7 @@ def build_blocks_parallel(words, code_ids, first_row, detectors, segment, seed, 
     biggest = np.zeros(n_chunks, dtype=np.int64)
     for c in prange(n_chunks):
         biggest[c] = _build_chunk(
-            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, segment, seed, bits,
+            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, sample_size, seed, bits,
             block_span, post, post_starts[c], block_indptr, block_lo, block_hi, block_starts[c], usage[c],
             weight_hist[c], count_usage,
         )
@@ -891,7 +891,7 @@ CHECK_TILE = 2048
 
 
 @inline_kernel
-def _check_block(post, block_indptr, lo, size, words, weights, detectors, segment, k, counts, cursor):
+def _check_block(post, block_indptr, lo, size, words, weights, detectors, sample_size, k, counts, cursor):
     """``check_postings`` for block ``k``: (problem, where), see there."""
     bits = block_indptr.shape[1] - 1
     for b in range(bits):
@@ -924,14 +924,14 @@ def _check_block(post, block_indptr, lo, size, words, weights, detectors, segmen
             cursor[b] = p
     for d in range(size):
         w = weights[(lo + d) // detectors]
-        want = w if segment < 0 or segment > w else segment
+        want = w if sample_size < 0 or sample_size > w else sample_size
         if counts[d] != want:
             return 4, lo + d
     return 0, 0
 
 
 @parallel_kernel
-def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detectors, segment):
+def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detectors, sample_size):
     """Check postings read from a file against the codes they index.
 
     The caller has already checked the *shape* of the tables (``block_indptr``
@@ -940,7 +940,7 @@ def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detec
     and checks, per block (blocks in parallel): every offset lies inside its
     block, the postings of each bit strictly ascend, the bit is set in the
     code that owns the detector, and every detector holds exactly
-    ``min(segment, weight)`` postings (``segment < 0``: all of its code's
+    ``min(sample_size, weight)`` postings (``sample_size < 0``: all of its code's
     bits). It walks each block in tiles of ``CHECK_TILE`` detectors with one
     cursor per bit, so the codes it tests stay in cache.
 
@@ -958,7 +958,7 @@ def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detec
         size = block_hi[k] - lo
         counts = np.zeros(size, dtype=np.int32)
         cursor = np.empty(bits, dtype=np.int64)
-        problem, where = _check_block(post, block_indptr, lo, size, words, weights, detectors, segment, k, counts,
+        problem, where = _check_block(post, block_indptr, lo, size, words, weights, detectors, sample_size, k, counts,
                                       cursor)
         problems[k] = problem
         wheres[k] = where

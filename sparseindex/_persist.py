@@ -35,7 +35,10 @@ from .errors import FormatVersionWarning, StoreFormatError
 
 MAGIC = b"\x89SIDX\r\n\x1a"
 FORMAT_MAJOR = 1
-FORMAT_MINOR = 0
+FORMAT_MINOR = 1
+#: Keys that format 1.0 (and sharded manifest format 1) spelled differently; nothing else changed.
+RENAMED_KEYS = {"segment": "sample_size", "active": "weight", "capacity": "limit"}
+_PARAM_RENAMES = {old: new for old, new in RENAMED_KEYS.items() if new == "sample_size"}
 #: magic, major, minor, header bytes, header CRC32, preamble CRC32, 8 zero bytes
 PREAMBLE = struct.Struct("<8sHHIII8x")
 PREAMBLE_CRC_SPAN = 20  # the CRC covers bytes 0..19 (everything before it)
@@ -67,7 +70,7 @@ class StoreState:
 
     bits: int
     threshold: int
-    segment: int | None
+    sample_size: int | None
     detectors: int
     seed: int
     block_span: int
@@ -150,7 +153,7 @@ def encode(state: StoreState):
         "kind": KIND,
         "written_by": _library_version(),
         "params": {
-            "bits": state.bits, "threshold": state.threshold, "segment": state.segment,
+            "bits": state.bits, "threshold": state.threshold, "sample_size": state.sample_size,
             "detectors": state.detectors, "seed": state.seed, "block_span": state.block_span,
         },
         "plan": state.plan,
@@ -322,8 +325,8 @@ def _check_preamble(pre: bytes, size: int, path):
     if magic != MAGIC:
         _fail("preamble", f"magic bytes {magic!r} are not {MAGIC!r}: not a sparseindex store file", path)
     if major != FORMAT_MAJOR:
-        _fail("preamble", f"format major version {major} is not supported (this library reads {FORMAT_MAJOR}.x)",
-              path)
+        _fail("preamble", f"store file format {major}.{minor} is not supported: this library reads "
+              f"{FORMAT_MAJOR}.0 to {FORMAT_MAJOR}.{FORMAT_MINOR}", path)
     if zlib.crc32(pre[:PREAMBLE_CRC_SPAN]) != preamble_crc:
         _fail("preamble", "CRC32 mismatch: the preamble is corrupt", path)
     if pre[PREAMBLE_CRC_SPAN + 4 :] != bytes(PREAMBLE.size - PREAMBLE_CRC_SPAN - 4):
@@ -384,11 +387,11 @@ def _parse_params(header, strict, path):
     top = _Fields(header, "header", ("kind", "written_by", "params", "plan", "counts", "sections"), strict, path)
     if header["kind"] != KIND:
         _fail("header", f"kind={header['kind']!r} is not {KIND!r}", path)
-    p = _Fields(header["params"], "params", ("bits", "threshold", "segment", "detectors", "seed", "block_span"),
+    p = _Fields(header["params"], "params", ("bits", "threshold", "sample_size", "detectors", "seed", "block_span"),
                 strict, path)
     bits = p.int("bits", 1, MAX_BITS)
     threshold = p.int("threshold", 1, bits)
-    segment = p.int("segment", threshold, 2**31 - 1, allow_none=True)
+    sample_size = p.int("sample_size", threshold, 2**31 - 1, allow_none=True)
     detectors = p.int("detectors", 1, MAX_DETECTORS_TOTAL)
     seed = p.int("seed", 0, 2**64 - 1)
     block_span = p.int("block_span", 1, 2**16)
@@ -401,7 +404,7 @@ def _parse_params(header, strict, path):
     if (blocks == 0) != (rows == 0):
         _fail("counts", f"blocks={blocks} with rows={rows}: a store has blocks exactly when it has rows", path)
     del top
-    return dict(bits=bits, threshold=threshold, segment=segment, detectors=detectors, seed=seed,
+    return dict(bits=bits, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=seed,
                 block_span=block_span, rows=rows, next_id=next_id, removed_count=removed, blocks=blocks,
                 postings=postings)
 
@@ -491,13 +494,13 @@ def _parse_plan(plan, v, path):
                 if not isinstance(value, list) or (depth and value):
                     _fail(where, "alternatives must be a list (and empty inside an alternative)", path)
                 kwargs["alternatives"] = tuple(build(a, f"{where}.alternatives[{j}]", 1) for j, a in enumerate(value))
-            elif field.name == "capacity":
+            elif field.name == "limit":
                 if value is None:
-                    kwargs["capacity"] = math.inf
+                    kwargs["limit"] = math.inf
                 elif isinstance(value, bool) or not isinstance(value, (int, float)) or value < 0:
-                    _fail(where, f"capacity={value!r} is not a count", path)
+                    _fail(where, f"limit={value!r} is not a count", path)
                 else:
-                    kwargs["capacity"] = value
+                    kwargs["limit"] = value
             elif field.type in ("int", int):
                 kwargs[field.name] = f.int(field.name, 0, 2**62)
             else:
@@ -510,8 +513,8 @@ def _parse_plan(plan, v, path):
     for key in ("bits", "threshold", "detectors"):
         if getattr(chosen, key) != v[key]:
             _fail("plan", f"plan {key}={getattr(chosen, key)} differs from the store's {key}={v[key]}", path)
-    if v["segment"] is not None and chosen.segment != v["segment"]:
-        _fail("plan", f"plan segment={chosen.segment} differs from the store's segment={v['segment']}", path)
+    if v["sample_size"] is not None and chosen.sample_size != v["sample_size"]:
+        _fail("plan", f"plan sample_size={chosen.sample_size} differs from the store's sample_size={v['sample_size']}", path)
     return chosen
 
 
@@ -587,9 +590,9 @@ def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
         tail_rows = indptr[groups == groups[-1]]
         if tail_rows.shape[0] > 2 + int(np.log2(1 + tail_rows[-1, -1] - tail_rows[0, 0])):
             _fail("block_lo", f"{tail_rows.shape[0]} blocks in the last span, more than a store ever keeps", path)
-        segment = -1 if v["segment"] is None else v["segment"]
+        sample_size = -1 if v["sample_size"] is None else v["sample_size"]
         with PARALLEL_LOCK:
-            problem, where = _kernels.check_postings(post, indptr, lo, hi, words, weights, detectors, segment)
+            problem, where = _kernels.check_postings(post, indptr, lo, hi, words, weights, detectors, sample_size)
         messages = {
             1: f"posting {where} points outside its block",
             2: f"posting {where} breaks the ascending order of its bit",
@@ -603,12 +606,48 @@ def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
     max_sample = 0
     if rows:
         top = int(weights.max())
-        max_sample = top if v["segment"] is None else min(top, v["segment"])
+        max_sample = top if v["sample_size"] is None else min(top, v["sample_size"])
     return arrays, removed, weights, max_sample
+
+
+def renamed_keys(obj, names, fail):
+    """``obj`` with its keys renamed by ``names`` (old -> new), if it is a dict.
+
+    An old object that already uses a new name is refused: ``fail(message)``.
+    """
+    if not isinstance(obj, dict):
+        return obj
+    out = {}
+    for key, value in obj.items():
+        if key in names.values():
+            fail(f"key {key!r} belongs to a later format version")
+        out[names.get(key, key)] = value
+    return out
+
+
+def renamed_plan(obj, fail):
+    """An old plan dict (alternatives included) with its keys spelled as now."""
+    obj = renamed_keys(obj, RENAMED_KEYS, fail)
+    if isinstance(obj, dict) and isinstance(obj.get("alternatives"), list):
+        obj["alternatives"] = [renamed_plan(a, fail) for a in obj["alternatives"]]
+    return obj
+
+
+def _header_from_1_0(header, path):
+    """A format 1.0 header read as 1.1: only key names differ."""
+    if not isinstance(header, dict):
+        return header
+    header = dict(header)
+    header["params"] = renamed_keys(header.get("params"), _PARAM_RENAMES, lambda m: _fail("params", m, path))
+    if header.get("plan") is not None:
+        header["plan"] = renamed_plan(header["plan"], lambda m: _fail("plan", m, path))
+    return header
 
 
 def _state_from(buf, header_text, header, minor, size, path) -> StoreState:
     strict = minor <= FORMAT_MINOR
+    if minor == 0:
+        header = _header_from_1_0(header, path)
     v = _parse_params(header, strict, path)
     plan = _parse_plan(header["plan"], v, path)
     data_start = PREAMBLE.size + len(header_text)
@@ -617,7 +656,7 @@ def _state_from(buf, header_text, header, minor, size, path) -> StoreState:
         return None
     arrays, removed, weights, max_sample = _validate_body(buf, header_text, v, layout, gaps, unknown, path)
     return StoreState(
-        bits=v["bits"], threshold=v["threshold"], segment=v["segment"], detectors=v["detectors"],
+        bits=v["bits"], threshold=v["threshold"], sample_size=v["sample_size"], detectors=v["detectors"],
         seed=v["seed"], block_span=v["block_span"], plan=plan, rows=v["rows"], next_id=v["next_id"],
         removed_count=v["removed_count"], words=arrays["words"], removed=removed, row_ids=arrays.get("row_ids"),
         block_lo=arrays["block_lo"], block_hi=arrays["block_hi"], block_indptr=arrays["block_indptr"],

@@ -1,6 +1,6 @@
 """Grouping kernels: exact copies, union–find components, the greedy first-representative rule.
 
-Kernels only (arrays in, arrays out, no validation); :mod:`sparseindex.dedupe`
+Kernels only (arrays in, arrays out, no validation); :mod:`sparseindex.near_duplicates`
 validates and calls them.
 
 * Exact copies: rows are hashed (splitmix64 fold of their words), sorted by

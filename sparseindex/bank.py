@@ -1,8 +1,8 @@
 """Detector banks: sampling, postings, threshold scans and compaction.
 
 Every stored code (a *row* here) owns ``detectors`` detectors with ids
-``row * detectors + j``. A detector samples ``segment`` of its code's set
-bits (all of them when ``segment`` is None or the code is lighter) and fires
+``row * detectors + j``. A detector samples ``sample_size`` of its code's set
+bits (all of them when ``sample_size`` is None or the code is lighter) and fires
 when at least ``threshold`` of them are set in a query.
 
 Postings map each bit to the detectors that sampled it. They live in
@@ -59,7 +59,7 @@ class DetectorBank:
     ----------
     bits : int
         Width of the codes.
-    threshold, segment, detectors, seed
+    threshold, sample_size, detectors, seed
         As in :class:`sparseindex.Store` (validated there).
     block_span : int
         Detectors per postings block (at most 65,536; smaller in tests to
@@ -68,24 +68,24 @@ class DetectorBank:
     Examples
     --------
     >>> import numpy as np
-    >>> bank = DetectorBank(bits=16, threshold=2, segment=None, detectors=1, seed=0)
+    >>> bank = DetectorBank(bits=16, threshold=2, sample_size=None, detectors=1, seed=0)
     >>> words = np.array([[(1 << 1) | (1 << 4) | (1 << 9)]], dtype=np.uint64)
     >>> bank.append(words, np.array([0]))
     >>> bank.postings_count, bank.rows
     (3, 1)
     """
 
-    def __init__(self, bits, threshold, segment, detectors, seed, block_span=BLOCK_SPAN):
+    def __init__(self, bits, threshold, sample_size, detectors, seed, block_span=BLOCK_SPAN):
         if not 1 <= block_span <= 2**16:
             raise ValueError(f"block_span={block_span} must be in 1..65536")
         self.bits = bits
         self.threshold = threshold
-        self.segment = segment
+        self.sample_size = sample_size
         self.detectors = detectors
         self.seed = seed
         self.block_span = block_span
         self.rows = 0
-        self._post = np.zeros(0, dtype=np.uint16)  # buffer; capacity >= used
+        self._post = np.zeros(0, dtype=np.uint16)  # buffer; room >= used
         self._used = 0
         self._block_indptr = np.zeros((0, bits + 1), dtype=np.int64)
         self._block_lo = np.zeros(0, dtype=np.int64)
@@ -104,9 +104,9 @@ class DetectorBank:
         Returns ``(det_indptr, det_bits)`` in row-major detector order. Pure:
         the bank is not changed.
         """
-        segment = -1 if self.segment is None else self.segment
+        sample_size = -1 if self.sample_size is None else self.sample_size
         return _kernels.sample_detectors(
-            indptr, indices, np.asarray(code_ids, dtype=np.int64), self.detectors, segment, np.uint64(self.seed)
+            indptr, indices, np.asarray(code_ids, dtype=np.int64), self.detectors, sample_size, np.uint64(self.seed)
         )
 
     def append(self, words: np.ndarray, code_ids: np.ndarray) -> None:
@@ -133,10 +133,10 @@ class DetectorBank:
                 f"a store holds at most {MAX_DETECTORS_TOTAL // self.detectors:,} codes with "
                 f"detectors={self.detectors}; adding {rows:,} to {self.rows:,} exceeds it"
             )
-        segment = -1 if self.segment is None else self.segment
+        sample_size = -1 if self.sample_size is None else self.sample_size
         code_ids = np.asarray(code_ids, dtype=np.int64)
         weights = _kernels.row_weights(words)
-        take = weights if segment < 0 else np.minimum(weights, segment)
+        take = weights if sample_size < 0 else np.minimum(weights, sample_size)
         chunk_rows = np.arange(0, rows + APPEND_CHUNK_ROWS, APPEND_CHUNK_ROWS, dtype=np.int64)
         chunk_rows[-1] = rows
         chunk_rows = np.unique(chunk_rows)
@@ -151,8 +151,8 @@ class DetectorBank:
         if need > buffer.shape[0]:
             # exact size for the first batch (a store built in one add wastes
             # nothing); grow by 1.5x after that
-            capacity = need if self._used == 0 else max(need, int(buffer.shape[0] * 1.5))
-            buffer = np.empty(capacity, dtype=np.uint16)
+            room = need if self._used == 0 else max(need, int(buffer.shape[0] * 1.5))
+            buffer = np.empty(room, dtype=np.uint16)
             buffer[: self._used] = self._post[: self._used]
         total_blocks = int(n_blocks.sum())
         new_indptr = np.empty((total_blocks, self.bits + 1), dtype=np.int64)
@@ -163,7 +163,7 @@ class DetectorBank:
         max_sample = self._max_sample
         max_weight = max(self._max_weight, int(weights.max())) if rows else self._max_weight
         if rows:
-            args = (words, code_ids, self.rows, self.detectors, segment, np.uint64(self.seed), self.bits,
+            args = (words, code_ids, self.rows, self.detectors, sample_size, np.uint64(self.seed), self.bits,
                     self.block_span, chunk_rows, buffer, post_starts, new_indptr, new_lo, new_hi, block_starts,
                     usage, weight_hist, count_usage)
             if chunk_rows.shape[0] > 2:
@@ -196,14 +196,14 @@ class DetectorBank:
         self._merge_blocks()
 
     @classmethod
-    def from_arrays(cls, bits, threshold, segment, detectors, seed, block_span, *, rows, postings, block_indptr,
+    def from_arrays(cls, bits, threshold, sample_size, detectors, seed, block_span, *, rows, postings, block_indptr,
                     block_lo, block_hi, max_sample, max_weight) -> "DetectorBank":
         """A bank over arrays that were validated elsewhere (a loaded file).
 
         The arrays are adopted, not copied: they may be memory-mapped.
         ``max_weight`` is the heaviest stored code's weight.
         """
-        bank = cls(bits, threshold, segment, detectors, seed, block_span)
+        bank = cls(bits, threshold, sample_size, detectors, seed, block_span)
         bank.rows = rows
         bank._post = postings
         bank._used = postings.shape[0]
@@ -263,7 +263,7 @@ class DetectorBank:
 
     def rebuilt(self, words: np.ndarray, code_ids: np.ndarray) -> "DetectorBank":
         """A new bank holding exactly these rows (used by compaction)."""
-        fresh = DetectorBank(self.bits, self.threshold, self.segment, self.detectors, self.seed, self.block_span)
+        fresh = DetectorBank(self.bits, self.threshold, self.sample_size, self.detectors, self.seed, self.block_span)
         fresh.verify_cost = self.verify_cost
         if words.shape[0]:
             fresh.append(words, code_ids)
@@ -288,7 +288,7 @@ class DetectorBank:
     @property
     def whole_codes(self) -> bool:
         """Whether every detector samples all of its code's bits (then it fires exactly when overlap >= threshold)."""
-        return self.segment is None or self._max_weight <= self.segment
+        return self.sample_size is None or self._max_weight <= self.sample_size
 
     def counter_dtype(self):
         top = max(self._max_sample, self.threshold)

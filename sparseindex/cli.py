@@ -17,7 +17,7 @@ from . import __version__
 COMMANDS = {
     "plan": "._cli_plan",
     "health": "._cli_health",
-    "dedupe": "._cli_dedupe",
+    "near-duplicates": "._cli_near_duplicates",
     "demo": "._cli_demo",
 }
 

@@ -57,8 +57,8 @@ from . import _persist, model
 from . import health as _health
 from ._locks import ReadWriteLock
 from .codes import Codes, as_code, as_codes
-from .errors import CapacityWarning, ReadOnlyStoreError, StoreFormatError
-from .health import Health, ProbeResult
+from .errors import SaturationWarning, ReadOnlyStoreError, StoreFormatError
+from .health import Health, FalseHitMeasurement
 from .planner import Plan, plan as make_plan
 from .store import BatchHits, Hits, Store, ids_below
 from .store import _check_chance as _chance
@@ -70,16 +70,20 @@ __all__ = ["ShardedStore", "ShardHost", "ShardLostError", "shard_of", "share_tar
 INSTALL_HINT = 'pip install "sparseindex[cluster]"'
 MANIFEST = "manifest.json"
 MANIFEST_KIND = "sparseindex sharded store"
-MANIFEST_FORMAT = 1
+MANIFEST_FORMAT = 2
+#: Manifest formats this library reads: 1 spelled some keys and the shard file names differently.
+MANIFEST_FORMATS = (1, 2)
 #: Seconds between liveness checks while a shard call is outstanding.
 POLL_SECONDS = 0.5
 #: Seconds a failed call waits for the cluster to notice a worker's death.
 SETTLE_SECONDS = 5.0
 
-_SHARD_FILE = re.compile(r"^shard-(\d{4,})-of-(\d{4,})\.g(\d{6,})\.sidx$")
+#: A shard file: its shard number, the shard count and the save generation.
+_SHARD_FILE = re.compile(r"^shard(\d{4,})\.total(\d{4,})\.gen(\d{6,})\.sidx$")
+_SHARD_FILE_FORMAT_1 = re.compile(r"^shard-(\d{4,})-of-(\d{4,})\.g(\d{6,})\.sidx$")  # manifest format 1 only
 _MANIFEST_KEYS = {"kind", "format", "written_by", "generation", "params", "plan", "shards", "routing",
                   "next_id", "items", "files"}
-_PARAM_KEYS = {"bits", "threshold", "segment", "detectors", "seed"}
+_PARAM_KEYS = {"bits", "threshold", "sample_size", "detectors", "seed"}
 _FILE_KEYS = {"shard", "file", "items", "next_id", "bytes"}
 
 
@@ -132,7 +136,7 @@ def share_targets(false_hit, capacity, shards):
     ``C_k = ceil(capacity / shards)`` codes at ``F_k = 1 - (1 - false_hit)
     ** (C_k / capacity)`` therefore meets its target exactly when the whole
     store meets ``false_hit`` at ``capacity``: the planner picks the same
-    segment, threshold and detectors for it.
+    sample_size, threshold and detectors for it.
 
     Examples
     --------
@@ -222,7 +226,7 @@ class ShardHost:
         s = self.store
         out = {
             "shard": self.shard, "worker": get_worker().address, "pid": os.getpid(), "items": len(s),
-            "next_id": s.next_id, "bits": s.bits, "threshold": s.threshold, "segment": s.segment,
+            "next_id": s.next_id, "bits": s.bits, "threshold": s.threshold, "sample_size": s.sample_size,
             "detectors": s.detectors, "seed": s.seed, "read_only": s.read_only, "routing_ok": None,
         }
         if check_routing:
@@ -326,7 +330,7 @@ def _batch_matches(batch: Codes, m: int) -> BatchHits:
     usable = np.flatnonzero(batch.weights >= m)
     if usable.size == 0:
         return BatchHits(np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64))
-    scratch = Store(batch.bits, threshold=m, segment=None, detectors=1, seed=0)
+    scratch = Store(batch.bits, threshold=m, sample_size=None, detectors=1, seed=0)
     scratch.add(batch[usable])
     found = scratch.query_many(batch, min_overlap=m)
     return BatchHits(found.indptr, usable[found.ids], found.overlaps)
@@ -379,7 +383,7 @@ class ShardedStore:
     shards : int
         Number of shards (K). Shard ``k`` holds the codes with id ``k`` mod
         K; shards are placed round-robin on ``workers``.
-    bits, threshold, segment, detectors, seed
+    bits, threshold, sample_size, detectors, seed
         As for :class:`~sparseindex.Store`; every shard gets the same
         values (``seed=None`` draws one seed for all).
     workers : list of str or None
@@ -407,15 +411,15 @@ class ShardedStore:
 
     # -- construction ----------------------------------------------------
 
-    def __init__(self, client, shards, bits, *, threshold, segment=None, detectors=1, seed=None, workers=None):
-        local = Store(bits, threshold=threshold, segment=segment, detectors=detectors, seed=seed)
-        params = dict(bits=local.bits, threshold=local.threshold, segment=local.segment,
+    def __init__(self, client, shards, bits, *, threshold, sample_size=None, detectors=1, seed=None, workers=None):
+        local = Store(bits, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=seed)
+        params = dict(bits=local.bits, threshold=local.threshold, sample_size=local.sample_size,
                       detectors=local.detectors, seed=local.seed)
         self._setup(client, shards, params, None)
         self._start([("new", params)] * self._shards, self._placement(workers, self._shards))
 
     @classmethod
-    def for_target(cls, client, shards, bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
+    def for_target(cls, client, shards, bits, weight, *, false_hit, capacity, noise=0.0, recall=0.999,
                    max_detectors=8, seed=None, workers=None, warn_fraction=0.8, on_status=None):
         """A sharded store planned from whole-store targets.
 
@@ -432,18 +436,18 @@ class ShardedStore:
         >>> share_targets(1e-9, 2_000_000, 2)[0]   # each of 2 shards is planned for 10^6 codes
         1000000
         """
-        whole = make_plan(bits, active, false_hit=false_hit, capacity=capacity, noise=noise, recall=recall,
+        whole = make_plan(bits, weight, false_hit=false_hit, capacity=capacity, noise=noise, recall=recall,
                           max_detectors=max_detectors)
         shards = _int("shards", shards, 1, 65535)
         share_cap, share_fh = share_targets(false_hit, capacity, shards)
-        local = Store(bits, threshold=whole.threshold, segment=whole.segment, detectors=whole.detectors, seed=seed)
-        params = dict(bits=local.bits, threshold=whole.threshold, segment=whole.segment,
+        local = Store(bits, threshold=whole.threshold, sample_size=whole.sample_size, detectors=whole.detectors, seed=seed)
+        params = dict(bits=local.bits, threshold=whole.threshold, sample_size=whole.sample_size,
                       detectors=whole.detectors, seed=local.seed)
-        shard_plan = make_plan(bits, active, false_hit=share_fh, capacity=share_cap, noise=noise, recall=recall,
+        shard_plan = make_plan(bits, weight, false_hit=share_fh, capacity=share_cap, noise=noise, recall=recall,
                                max_detectors=max_detectors)
-        if (shard_plan.segment, shard_plan.threshold, shard_plan.detectors) == (
-                whole.segment, whole.threshold, whole.detectors):
-            spec = ("plan", dict(bits=bits, active=active, false_hit=share_fh, capacity=share_cap, noise=noise,
+        if (shard_plan.sample_size, shard_plan.threshold, shard_plan.detectors) == (
+                whole.sample_size, whole.threshold, whole.detectors):
+            spec = ("plan", dict(bits=bits, weight=weight, false_hit=share_fh, capacity=share_cap, noise=noise,
                                  recall=recall, max_detectors=max_detectors, seed=local.seed,
                                  warn_fraction=warn_fraction))
         else:  # a rounding step at a boundary: keep the whole plan, watch the share target
@@ -476,7 +480,7 @@ class ShardedStore:
         self._load_options = {"mmap": False, "writable": None}
         self._served = {"queries": 0, "hits": 0, "added": 0, "removed": 0}
         self._served_lock = threading.Lock()
-        self._probe = None
+        self._measurement = None
         self._watch = None
         self._memo_usage = None
         self._closed = False
@@ -650,7 +654,7 @@ class ShardedStore:
 
     bits = property(lambda self: self._params["bits"], doc="Width of every code.")
     threshold = property(lambda self: self._params["threshold"], doc="Sampled bits a detector needs to fire.")
-    segment = property(lambda self: self._params["segment"], doc="Set bits each detector samples (None: all).")
+    sample_size = property(lambda self: self._params["sample_size"], doc="Set bits each detector samples (None: all).")
     detectors = property(lambda self: self._params["detectors"], doc="Detectors per stored code.")
     seed = property(lambda self: self._params["seed"], doc="Seed of the detector sampling (all shards).")
     shards = property(lambda self: self._shards, doc="Number of shards.")
@@ -677,7 +681,7 @@ class ShardedStore:
     def __repr__(self) -> str:
         state = "closed" if self._closed else (f"lost shards {sorted(self._lost)}" if self._lost else "ok")
         return (f"ShardedStore(shards={self._shards}, bits={self.bits}, threshold={self.threshold}, "
-                f"segment={self.segment}, detectors={self.detectors}, items={self._items}, "
+                f"sample_size={self.sample_size}, detectors={self.detectors}, items={self._items}, "
                 f"seed={self.seed}, {state})")
 
     def __reduce__(self):
@@ -913,7 +917,7 @@ class ShardedStore:
         model) is computed from the sums; the per-code false-hit chance is
         the same on every shard (one configuration), so the whole store's
         chance is ``store_false_hit(per_code, total items)`` and its
-        capacity ``capacity(per_code, target)``. The usage-aware estimate
+        limit ``code_limit(per_code, target)``. The usage-aware estimate
         samples 256 live codes of the whole store as ``Store.health`` does.
         Queries and hits count whole-store queries (not one per shard).
         For each shard's own report against its share use :meth:`shard_health`.
@@ -982,7 +986,7 @@ class ShardedStore:
         target = self._target(false_hit)
         watch, plan = self._watch, self._plan
         warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
-        q = _health._nominal_active(self, _health._weights(hist)[1])
+        q = _health._nominal_weight(self, _health._weights(hist)[1])
         per_uniform = cap_uniform = None
         if q is not None:
             per_uniform, cap_uniform = _health._uniform(self, q, target)
@@ -990,58 +994,58 @@ class ShardedStore:
         with self._served_lock:
             served = dict(self._served)
         return _health.derive(
-            bits=self.bits, threshold=self.threshold, segment=self.segment, detectors=self.detectors, plan=plan,
+            bits=self.bits, threshold=self.threshold, sample_size=self.sample_size, detectors=self.detectors, plan=plan,
             target=target, warn=warn, usage=usage, hist=hist, items=items,
             removed_pending=int(sum(s["removed"] for s in stats)), q=q, per_uniform=per_uniform,
-            cap_uniform=cap_uniform, estimate=est, probe=self._probe, served=served,
+            cap_uniform=cap_uniform, estimate=est, measurement=self._measurement, served=served,
             memory=int(sum(s["nbytes"] for s in stats)), started=started,
         )
 
-    def probe(self, queries=10_000, *, source="uniform", seed=None, batch=2048) -> ProbeResult:
+    def measure_false_hits(self, queries=10_000, *, source="uniform", seed=None, batch=2048) -> FalseHitMeasurement:
         """Random unrelated queries through every shard: the measured whole-store false-hit rate.
 
-        The same queries, counts and interval as :meth:`Store.probe` with
-        the same ``seed`` on a single store of the same codes. Probe
+        The same queries, counts and interval as :meth:`Store.measure_false_hits` with
+        the same ``seed`` on a single store of the same codes. Measurement
         queries do not count as served queries of the whole store (each
         shard's own counters do count them).
         """
         if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
-            raise ValueError(f"probe: queries={queries!r} must be a positive integer")
+            raise ValueError(f"measure_false_hits: queries={queries!r} must be a positive integer")
         if source not in ("uniform", "usage"):
-            raise ValueError(f"probe: source={source!r} must be 'uniform' or 'usage'")
+            raise ValueError(f"measure_false_hits: source={source!r} must be 'uniform' or 'usage'")
         if seed is None:
             seed = int(np.random.SeedSequence().generate_state(1)[0])
         started = time.perf_counter()
         with self._rw.reading():
-            self._usable("probe")
+            self._usable("measurement")
             h = self._report(None, None, False)
-            q, items = h.query_active, h.items
+            q, items = h.query_weight, h.items
             if q is None or items == 0:
-                raise ValueError("probe: the store is empty; there is nothing to probe")
+                raise ValueError("measure_false_hits: the store is empty; there is nothing to measure")
             if source == "uniform":
-                probes = Codes.random(int(queries), self.bits, q, seed=seed)
+                unrelated = Codes.random(int(queries), self.bits, q, seed=seed)
                 predicted = h.per_code_uniform
             else:
-                usage = np.sum([s["usage"] for s in self._everywhere("stats", (), "probe")], axis=0)
+                usage = np.sum([s["usage"] for s in self._everywhere("stats", (), "measurement")], axis=0)
                 p = model.usage_bernoulli(_health.usage_frequencies(usage, items)[0], q)
-                probes = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=self.bits)
+                unrelated = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=self.bits)
                 predicted = h.per_code_usage
             hit_queries = hits = 0
             for a in range(0, int(queries), batch):
-                counts = self._query_batch(probes[a : a + batch], 0, "probe").counts
+                counts = self._query_batch(unrelated[a : a + batch], 0, "measure_false_hits").counts
                 hit_queries += int(np.count_nonzero(counts))
                 hits += int(counts.sum())
         n = int(queries)
         low, high = model.clopper_pearson(hit_queries, n)
-        result = ProbeResult(
-            source=source, queries=n, query_active=q, items=items, queries_hit=hit_queries, hits=hits,
+        result = FalseHitMeasurement(
+            source=source, queries=n, query_weight=q, items=items, queries_hit=hit_queries, hits=hits,
             rate=hit_queries / n, low=float(low), high=float(high),
             upper=float(model.clopper_pearson_upper(hit_queries, n)), hits_per_query=hits / n,
             predicted_rate=None if predicted is None else float(model.store_false_hit(min(1.0, predicted), items)),
             predicted_hits=None if predicted is None else float(items * predicted),
             seed=int(seed), seconds=time.perf_counter() - started,
         )
-        self._probe = result
+        self._measurement = result
         return result
 
     def watch(self, on_status=None, *, warn_fraction=0.8, false_hit=None) -> None:
@@ -1049,7 +1053,7 @@ class ShardedStore:
 
         As :meth:`Store.watch`, for the whole store: called in the changing
         thread after an ``add``, ``find_or_add`` or ``remove`` moved the
-        status; crossing capacity issues :class:`~sparseindex.CapacityWarning`.
+        status; crossing the limit issues :class:`~sparseindex.SaturationWarning`.
         """
         if on_status is not None and not callable(on_status):
             raise TypeError(f"on_status={on_status!r} must be callable or None")
@@ -1077,9 +1081,9 @@ class ShardedStore:
             return
         if current == "saturated":
             warnings.warn(
-                f"the sharded store now holds {h.items:,} codes, past its capacity of {h.capacity:,.0f} at the "
+                f"the sharded store now holds {h.items:,} codes, past its limit of {h.limit:,.0f} at the "
                 f"false-hit target {h.target_false_hit:g} per query (predicted now: {h.false_hit_now:.3g})",
-                CapacityWarning, stacklevel=3,
+                SaturationWarning, stacklevel=3,
             )
         if watcher.callback is not None:
             try:
@@ -1110,7 +1114,7 @@ class ShardedStore:
             self._usable("save")
             os.makedirs(directory, exist_ok=True)
             generation = _next_generation(directory)
-            names = {k: f"shard-{k:04d}-of-{self._shards:04d}.g{generation:06d}.sidx" for k in range(self._shards)}
+            names = {k: shard_file_name(k, self._shards, generation) for k in range(self._shards)}
             stats = self._everywhere("describe", (), "save")
             try:
                 sizes = self._fanout("save", {k: (os.path.join(directory, names[k]),) for k in names}, "save")
@@ -1128,7 +1132,7 @@ class ShardedStore:
             _write_atomically(os.path.join(directory, MANIFEST),
                               json.dumps(manifest, indent=1, allow_nan=False).encode("utf-8"))
             keep = {f["file"] for f in files}
-            _remove_quietly(directory, [n for n in os.listdir(directory) if _SHARD_FILE.match(n) and n not in keep])
+            _remove_quietly(directory, [n for n in os.listdir(directory) if _shard_file_match(n) and n not in keep])
             self._saved = (directory, generation, files, dict(self._load_options))
             self._dirty = [False] * self._shards
 
@@ -1310,7 +1314,7 @@ def _next_generation(directory: str) -> int:
     """One more than any generation in ``directory`` (manifest or shard file names)."""
     top = 0
     for name in os.listdir(directory):
-        match = _SHARD_FILE.match(name)
+        match = _shard_file_match(name)
         if match:
             top = max(top, int(match.group(3)))
     try:
@@ -1321,6 +1325,30 @@ def _next_generation(directory: str) -> int:
     except (OSError, ValueError, AttributeError):
         pass
     return top + 1
+
+
+def shard_file_name(shard: int, shards: int, generation: int) -> str:
+    """The file name of ``shard`` of ``shards`` in save ``generation``.
+
+    Examples
+    --------
+    >>> shard_file_name(1, 2, 3)
+    'shard0001.total0002.gen000003.sidx'
+    """
+    return f"shard{shard:04d}.total{shards:04d}.gen{generation:06d}.sidx"
+
+
+def _shard_file_match(name: str):
+    return _SHARD_FILE.match(name) or _SHARD_FILE_FORMAT_1.match(name)
+
+
+def _manifest_from_format_1(doc: dict, fail) -> dict:
+    """A format-1 manifest with its keys spelled as in format 2 (the file names stay as written)."""
+    doc = dict(doc)
+    params_renamed = {old: new for old, new in _persist.RENAMED_KEYS.items() if new in _PARAM_KEYS}
+    doc["params"] = _persist.renamed_keys(doc["params"], params_renamed, lambda m: fail(f"params: {m}"))
+    doc["plan"] = _persist.renamed_plan(doc["plan"], lambda m: fail(f"plan: {m}"))
+    return doc
 
 
 def _read_manifest(path: str) -> dict:
@@ -1351,8 +1379,10 @@ def _read_manifest(path: str) -> dict:
         fail(f"keys {got} must be exactly {sorted(_MANIFEST_KEYS)}")
     if doc["kind"] != MANIFEST_KIND:
         fail(f"kind={doc['kind']!r} must be {MANIFEST_KIND!r}")
-    if doc["format"] != MANIFEST_FORMAT:
-        fail(f"format={doc['format']!r} is not a known version (this library reads {MANIFEST_FORMAT})")
+    if doc["format"] not in MANIFEST_FORMATS:
+        fail(f"format={doc['format']!r} is not a version this library reads ({', '.join(map(str, MANIFEST_FORMATS))})")
+    if doc["format"] == 1:
+        doc = _manifest_from_format_1(doc, fail)
     if doc["routing"] != "id % shards":
         fail(f"routing={doc['routing']!r} must be 'id % shards'")
     shards = whole(doc["shards"], "shards", 1, 65535)
@@ -1364,8 +1394,8 @@ def _read_manifest(path: str) -> dict:
         fail(f"params must hold exactly {sorted(_PARAM_KEYS)}")
     for key in ("bits", "threshold", "detectors"):
         whole(params[key], f"params.{key}", 1, 2**24)
-    if params["segment"] is not None:
-        whole(params["segment"], "params.segment", 1, 2**24)
+    if params["sample_size"] is not None:
+        whole(params["sample_size"], "params.sample_size", 1, 2**24)
     whole(params["seed"], "params.seed", 0, 2**64 - 1)
     files = doc["files"]
     if not isinstance(files, list) or len(files) != shards:
@@ -1375,7 +1405,8 @@ def _read_manifest(path: str) -> dict:
         if not isinstance(entry, dict) or set(entry) != _FILE_KEYS:
             fail(f"files[{k}] must hold exactly {sorted(_FILE_KEYS)}")
         whole(entry["shard"], f"files[{k}].shard", k, k)
-        match = _SHARD_FILE.match(entry["file"]) if isinstance(entry["file"], str) else None
+        pattern = _SHARD_FILE_FORMAT_1 if doc["format"] == 1 else _SHARD_FILE
+        match = pattern.match(entry["file"]) if isinstance(entry["file"], str) else None
         if not match or (int(match.group(1)), int(match.group(2)), int(match.group(3))) != (k, shards, doc["generation"]):
             fail(f"files[{k}].file={entry['file']!r} is not this save's file of shard {k}")
         total += whole(entry["items"], f"files[{k}].items", 0)
@@ -1397,6 +1428,6 @@ def _plan_from_dict(d):
         return None
     fields = dict(d)
     alternatives = tuple(_plan_from_dict(a) for a in fields.pop("alternatives", []))
-    if fields.get("capacity") is None:
-        fields["capacity"] = math.inf
+    if fields.get("limit") is None:
+        fields["limit"] = math.inf
     return Plan(**fields, alternatives=alternatives)

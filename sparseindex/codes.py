@@ -349,16 +349,16 @@ class Codes:
         return cls._wrap(words, bits)
 
     @classmethod
-    def random(cls, count, bits, active, seed=0) -> "Codes":
-        """``count`` random codes with exactly ``active`` distinct set bits each.
+    def random(cls, count, bits, weight, seed=0) -> "Codes":
+        """``count`` random codes with exactly ``weight`` distinct set bits each.
 
         Uniform over all such codes (Floyd's sampling, kernel
-        ``random_indices``); reproducible from ``seed``. For tests, probes and
-        benchmarks. O(count * active).
+        ``random_indices``); reproducible from ``seed``. For tests, measurements and
+        benchmarks. O(count * weight).
 
         Examples
         --------
-        >>> c = Codes.random(3, bits=100, active=5, seed=1)
+        >>> c = Codes.random(3, bits=100, weight=5, seed=1)
         >>> c.weights.tolist()
         [5, 5, 5]
         """
@@ -366,12 +366,12 @@ class Codes:
         count = int(count)
         if count < 0:
             raise ValueError(f"count={count} must be >= 0")
-        if not 0 <= active <= bits:
-            raise ValueError(f"active={active} must be in 0..bits={bits}")
+        if not 0 <= weight <= bits:
+            raise ValueError(f"weight={weight} must be in 0..bits={bits}")
         seed = int(seed)
         if not 0 <= seed < 2**64:
             raise ValueError(f"seed={seed} must be in 0..2**64-1")
-        return cls._wrap(_kernels.random_words(count, bits, int(active), np.uint64(seed)), bits)
+        return cls._wrap(_kernels.random_words(count, bits, int(weight), np.uint64(seed)), bits)
 
     # -- exits --------------------------------------------------------------
 
@@ -551,7 +551,7 @@ class Codes:
 
 
 def _row_array(row, r: int) -> np.ndarray:
-    """One row of a sequence-of-sequences input as a 1-D array."""
+    """One row of a sequence of index sequences as a 1-D array."""
     if isinstance(row, (Set, frozenset)):
         row = sorted(row, key=lambda v: (not isinstance(v, Integral), v if isinstance(v, Integral) else 0))
     if isinstance(row, (str, bytes)) or not isinstance(row, (Sequence, np.ndarray)):

@@ -12,11 +12,11 @@ catalogue must
 3. recognise a bolt from a rescan that misses features and picks up dust, or
    from a partial scan, and keep chance matches of unknown bolts rare — the
    measured recall and false hits are printed beside the model's prediction;
-4. catch bolts the scanners uploaded twice (:func:`sparseindex.dedupe` on the
+4. catch bolts the scanners uploaded twice (:func:`sparseindex.near_duplicates` on the
    upload batch, :meth:`Store.find_or_add` against the catalogue);
 5. say in advance when it fills up (:meth:`Store.health`, the status
-   callbacks of :meth:`Store.watch`, probes of random unknown bolts) as it
-   grows past the warning level and past capacity;
+   callbacks of :meth:`Store.watch`, measurements of random unknown bolts) as it
+   grows past the warning level and past the model's limit;
 6. be saved and served memory-mapped (:meth:`Store.save`,
    :meth:`Store.load`);
 7. draw its headroom curve (a PNG, when matplotlib is installed).
@@ -41,29 +41,29 @@ import numpy as np
 
 from . import _banding, model
 from .codes import Codes
-from .dedupe import TqdmProgress, _near_copies, dedupe, planted_duplicates
-from .errors import CapacityWarning
+from .near_duplicates import TqdmProgress, _near_copies, label_near_duplicates, planted_duplicates
+from .errors import SaturationWarning
 from .store import Store
 
 __all__ = ["run", "DemoResult", "Recall", "Stage", "DEFAULT_SIZE"]
 
 BITS = 2048  # width of a bolt code
-ACTIVE = 40  # hashed weave features per bolt
+WEIGHT = 40  # hashed weave features per bolt
 FALSE_HIT = 1e-3  # target chance that an unknown bolt matches some catalogued bolt
 NOISE = 0.25  # a rescan may miss a quarter of the features ...
 RECALL = 0.999  # ... and must still be recognised this often
-WARN_FRACTION = 0.8  # status "filling" from 80% of capacity
-DEDUPE_RECALL = 0.999  # banding: least chance of finding the hardest re-upload pair
+WARN_FRACTION = 0.8  # status "filling" from 80% of the limit
+NEAR_DUPLICATE_RECALL = 0.999  # banding: least chance of finding the hardest re-upload pair
 MIN_OVERLAP = 32  # two uploads of one bolt share at least 32 of its 40 features
 MAX_CHANGED = 8  # a re-upload differs from the first upload in at most 8 features
 QUERIES = 2_000  # rescans of each kind
-PROBES = 20_000  # unknown bolts probed against the catalogue
-STAGE_PROBES = 10_000  # unknown bolts probed at each later fill level
-PROBE_BUDGET = 2e9  # counter updates allowed per probe (fewer probes in a huge store)
+UNKNOWN_QUERIES = 20_000  # unknown bolts queried against the catalogue
+STAGE_QUERIES = 10_000  # unknown bolts queried at each later fill level
+MEASURE_BUDGET = 2e9  # counter updates allowed per measurement (fewer measurements in a huge store)
 DEFAULT_SIZE = 200_000
 SIGMA3 = 0.9973  # two-sided coverage of +/- 3 standard deviations of a normal law
 MIN_SIZE = 1_000
-FILL_TO = 1.1  # the demo fills the store to 110% of its capacity
+FILL_TO = 1.1  # the demo fills the store to 110% of the model's limit
 STORE_FILE = "quillmarsh-bolts.sidx"
 PLOT_FILE = "headroom.png"
 
@@ -106,7 +106,7 @@ class Recall:
 
 @dataclasses.dataclass(frozen=True)
 class Stage:
-    """The store at one fill level: model figures and a probe of unknown bolts.
+    """The store at one fill level: model figures and a measurement of unknown bolts.
 
     Examples
     --------
@@ -117,11 +117,11 @@ class Stage:
 
     label: str
     items: int
-    capacity: float
+    limit: float
     headroom: float
     false_hit_now: float
-    probes: int
-    probes_hit: int
+    queries: int
+    queries_hit: int
     low: float
     high: float
     predicted_rate: float
@@ -129,8 +129,8 @@ class Stage:
 
     @property
     def fill(self) -> float:
-        """Codes stored as a fraction of capacity."""
-        return self.items / self.capacity
+        """Codes stored as a fraction of the limit."""
+        return self.items / self.limit
 
 
 @dataclasses.dataclass(frozen=True)
@@ -142,14 +142,14 @@ class DemoResult:
     size, seed : int
         The request.
     plan : Plan
-        The store's plan (segment, threshold, detectors, capacity, recall).
+        The store's plan (sample size, threshold, detectors, limit, recall).
     recall : tuple of Recall
         The recall phase, one entry per kind of query.
-    unknown : ProbeResult
+    unknown : FalseHitMeasurement
         Random unknown bolts against the catalogue.
     uploads, planted_in_batch, found_in_batch, unplanted_merges : int
         The upload batch, its planted re-uploads of bolts in the same batch,
-        how many of those :func:`dedupe` grouped with their source, and
+        how many of those :func:`label_near_duplicates` grouped with their source, and
         merges of codes that were not planted copies of each other.
     planted_catalogue, found_catalogue, unplanted_catalogue : int
         Re-uploads of catalogued bolts, how many :meth:`Store.find_or_add`
@@ -224,7 +224,7 @@ def _bolt(i) -> str:
 
 def _rows(codes: Codes) -> np.ndarray:
     """The set-bit indices of codes of equal weight, one row per code."""
-    return np.stack(codes.to_indices()) if len(codes) else np.zeros((0, ACTIVE), dtype=np.int64)
+    return np.stack(codes.to_indices()) if len(codes) else np.zeros((0, WEIGHT), dtype=np.int64)
 
 
 def _partial(rows: np.ndarray, keep: int, rng) -> np.ndarray:
@@ -240,10 +240,10 @@ def _found(hits, sources) -> np.ndarray:
     return np.bincount(which[own], minlength=len(hits)) > 0
 
 
-def _probe_count(store, wanted) -> int:
-    """Probes to run: ``wanted``, fewer where a query costs many counter updates."""
-    per_query = ACTIVE * store.postings_count / store.bits
-    return int(max(1_000, min(wanted, PROBE_BUDGET / max(per_query, 1.0))))
+def _measure_size(store, wanted) -> int:
+    """Measurements to run: ``wanted``, fewer where a query costs many counter updates."""
+    per_query = WEIGHT * store.postings_count / store.bits
+    return int(max(1_000, min(wanted, MEASURE_BUDGET / max(per_query, 1.0))))
 
 
 def _warm_up(folder) -> None:
@@ -251,11 +251,11 @@ def _warm_up(folder) -> None:
 
     The store gets more than one postings block (65,536 detectors each), so
     the block merges and the parallel single query are compiled here too.
-    Banded min-hashing is left out: ``dedupe`` picks it only for upload
+    Banded min-hashing is left out: ``label_near_duplicates`` picks it only for upload
     batches large enough to pay for it (its kernels then compile in step 4).
     """
     codes = Codes.random(70_000, 256, 12, seed=5)
-    store = Store(256, threshold=4, segment=8, seed=5)
+    store = Store(256, threshold=4, sample_size=8, seed=5)
     store.add(codes[:40_000])
     store.add(codes[40_000:69_000])
     store.query(codes[0])
@@ -263,8 +263,8 @@ def _warm_up(folder) -> None:
     store.find_or_add(codes[68_900:], min_overlap=9)
     store.watch(false_hit=0.5)
     store.health()
-    store.probe(100, seed=1)
-    dedupe(codes[:1_000], min_overlap=9, method="index", mode="components")
+    store.measure_false_hits(100, seed=1)
+    label_near_duplicates(codes[:1_000], min_overlap=9, method="index", mode="components")
     path = os.path.join(folder, ".warm-up.sidx")
     store.save(path)
     Store.load(path, mmap=True).query_many(codes[:5])
@@ -286,7 +286,7 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     size : int
         Bolts in the catalogue the store is planned for (>= 1,000). The
         demo then adds about ``size / 8`` uploads and fills the store to
-        110% of the capacity the plan gives it.
+        110% of the limit the plan gives it.
     seed : int
         Seeds every random choice: the same seed prints the same figures
         (times aside).
@@ -339,8 +339,8 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
     say(f"sparseindex demo: the Quillmarsh weaving mill (an invented scenario; data made from seed {seed})")
     say()
-    say(f"Every bolt of cloth the mill weaves is scanned, and the scanner hashes the bolt's {ACTIVE} most")
-    say(f"distinctive weave features into a {BITS:,}-bit code ({ACTIVE} set bits, {100 * ACTIVE / BITS:.1f}% of them).")
+    say(f"Every bolt of cloth the mill weaves is scanned, and the scanner hashes the bolt's {WEIGHT} most")
+    say(f"distinctive weave features into a {BITS:,}-bit code ({WEIGHT} set bits, {100 * WEIGHT / BITS:.1f}% of them).")
     say("The catalogue must recognise a bolt from a rescan that misses features or picks up dust, catch")
     say("bolts the scanners uploaded twice, and warn before chance matches become too common.")
     say()
@@ -356,11 +356,11 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
     def on_status(previous, current, h):
         transitions.append((previous, current, h.items))
-        say(f"   >> status {previous} -> {current} at {h.items:,} bolts ({100 * h.fill_fraction:.1f}% of capacity, "
+        say(f"   >> status {previous} -> {current} at {h.items:,} bolts ({100 * h.fill_fraction:.1f}% of the limit, "
             f"headroom {_n(h.headroom_codes)} bolts)")
 
     t0 = time.perf_counter()
-    store = Store.for_target(BITS, ACTIVE, false_hit=FALSE_HIT, capacity=size, noise=NOISE, recall=RECALL,
+    store = Store.for_target(BITS, WEIGHT, false_hit=FALSE_HIT, capacity=size, noise=NOISE, recall=RECALL,
                              seed=code_seed(1), warn_fraction=WARN_FRACTION, on_status=on_status)
     seconds["plan"] = time.perf_counter() - t0
     p = store.plan
@@ -368,20 +368,20 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     say("1. Plan the store from targets (sparseindex.plan, through Store.for_target)")
     say(f"   targets: {size:,} bolts; at most {FALSE_HIT:g} false hits per query (the chance that an unknown")
     say(f"            bolt matches some catalogued bolt); recall >= {RECALL:g} when a rescan misses {lost} of the")
-    say(f"            {ACTIVE} features (noise {NOISE:g})")
-    say(f"   plan:    segment {p.segment}, threshold {p.threshold}, detectors {p.detectors}: each bolt gets "
-        f"{p.detectors} detector{'s' if p.detectors != 1 else ''} of {p.segment} of its")
+    say(f"            {WEIGHT} features (noise {NOISE:g})")
+    say(f"   plan:    sample size {p.sample_size}, threshold {p.threshold}, detectors {p.detectors}: each bolt gets "
+        f"{p.detectors} detector{'s' if p.detectors != 1 else ''} of {p.sample_size} of its")
     say(f"            features, firing when a query holds at least {p.threshold} of them "
         f"({p.postings_per_code} postings = {2 * p.postings_per_code} bytes per bolt)")
     say(f"   model:   recall {p.recall:.5f} at the planned noise; {p.false_hit_per_code:.3g} false hits per bolt "
         f"per query;")
-    say(f"            capacity {_n(p.capacity)} bolts at the target ({p.capacity / size:.2f}x the {size:,} planned)")
+    say(f"            limit {_n(p.limit)} bolts at the target ({p.limit / size:.2f}x the {size:,} planned)")
     say(f"   planned in {1e3 * seconds['plan']:.0f} ms")
     say()
 
     # -- 2. build ---------------------------------------------------------
     say(f"2. Build the catalogue: {size:,} bolts")
-    catalogue = Codes.random(size, BITS, ACTIVE, seed=code_seed(2))
+    catalogue = Codes.random(size, BITS, WEIGHT, seed=code_seed(2))
     curve = []  # (codes stored, false hit per query now, headroom) after every batch added
     t0 = time.perf_counter()
     chunk = max(1_000, -(-size // 20))
@@ -401,13 +401,13 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     q_count = min(QUERIES, size)
     sources = np.sort(rng.choice(size, size=q_count, replace=False)).astype(np.int64)
     own = _rows(catalogue[sources])
-    heavy = int(math.ceil(0.4 * ACTIVE))
+    heavy = int(math.ceil(0.4 * WEIGHT))
     kinds = [
-        ("rescan at the planned noise", ACTIVE - lost, lost,
+        ("rescan at the planned noise", WEIGHT - lost, lost,
          _near_copies(own, np.full(q_count, lost), BITS, rng)),
-        ("rescan, heavier noise", ACTIVE - heavy, heavy,
+        ("rescan, heavier noise", WEIGHT - heavy, heavy,
          _near_copies(own, np.full(q_count, heavy), BITS, rng)),
-        ("partial scan (part of the bolt)", ACTIVE - heavy, 0, _partial(own, ACTIVE - heavy, rng)),
+        ("partial scan (part of the bolt)", WEIGHT - heavy, 0, _partial(own, WEIGHT - heavy, rng)),
     ]
     say(f"3. Recognise bolts from rescans ({q_count:,} queries of each kind; a hit is a catalogued bolt whose")
     say("   detector fires; 'false hits' are hits on other bolts)")
@@ -422,15 +422,15 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
         ms = 1e3 * (time.perf_counter() - tq) / q_count
         found = _found(hits, sources)
         weight = kept + dust
-        segment = min(p.segment, ACTIVE)
-        predicted = float(model.recall(ACTIVE, segment, p.threshold, p.detectors, noise=(ACTIVE - kept) / ACTIVE))
-        per_code = float(model.false_hit_per_code(BITS, ACTIVE, segment, p.threshold, p.detectors, weight))
+        sample_size = min(p.sample_size, WEIGHT)
+        predicted = float(model.recall(WEIGHT, sample_size, p.threshold, p.detectors, noise=(WEIGHT - kept) / WEIGHT))
+        per_code = float(model.false_hit_per_code(BITS, WEIGHT, sample_size, p.threshold, p.detectors, weight))
         expected = q_count * (len(store) - 1) * per_code
         r = Recall(kind, kept, dust, q_count, int(found.sum()), predicted, int(hits.counts.sum() - found.sum()),
                    expected, ms)
         recalls.append(r)
         low, high = model.clopper_pearson(r.recalled, r.queries)
-        what = f"{kept} of {ACTIVE} features kept" + (f", {dust} dust features added" if dust else ", nothing added")
+        what = f"{kept} of {WEIGHT} features kept" + (f", {dust} dust features added" if dust else ", nothing added")
         say(f"   {kind}: {what}")
         say(f"     recall      {r.recall:.5f} measured ({r.recalled:,} of {r.queries:,}; 95% CI "
             f"{low:.5f}-{high:.5f}); model {predicted:.5f}")
@@ -441,9 +441,9 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     say(f"   e.g. the rescan of bolt {_bolt(sources[0])} hits "
         + (", ".join(f"{_bolt(i)} ({o} shared features)" for i, o in zip(example.ids[:3], example.overlaps[:3]))
            or "nothing"))
-    n_probe = _probe_count(store, PROBES)
-    unknown = store.probe(n_probe, seed=code_seed(3))
-    say(f"   unknown bolts (never catalogued): {unknown.queries:,} random codes of {ACTIVE} features")
+    n_queries = _measure_size(store, UNKNOWN_QUERIES)
+    unknown = store.measure_false_hits(n_queries, seed=code_seed(3))
+    say(f"   unknown bolts (never catalogued): {unknown.queries:,} random codes of {WEIGHT} features")
     say(f"     false-hit rate  {unknown.rate:.5f} per query measured ({unknown.queries_hit:,} queries hit; "
         f"95% CI {unknown.low:.5f}-{unknown.high:.5f})")
     say(f"                     model {unknown.predicted_rate:.5f}")
@@ -454,14 +454,14 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     say()
 
     h = store.health()
-    stages = [Stage("catalogue built", h.items, h.capacity, h.headroom_codes, h.false_hit_now, unknown.queries,
+    stages = [Stage("catalogue built", h.items, h.limit, h.headroom_codes, h.false_hit_now, unknown.queries,
                     unknown.queries_hit, unknown.low, unknown.high, unknown.predicted_rate, h.status)]
 
-    # -- 4. dedupe the upload batch ----------------------------------------
+    # -- 4. label near-duplicates in the upload batch ----------------------------------------
     t0 = time.perf_counter()
     n_new = max(500, size // 8)
     n_again = max(20, size // 100)
-    fresh, in_batch_src, changed = planted_duplicates(n_new, BITS, ACTIVE, fraction=0.1, max_changed=MAX_CHANGED,
+    fresh, in_batch_src, changed = planted_duplicates(n_new, BITS, WEIGHT, fraction=0.1, max_changed=MAX_CHANGED,
                                                       seed=code_seed(4))
     again_of = np.sort(rng.choice(size, size=n_again, replace=False)).astype(np.int64)
     again = Codes.from_indices(
@@ -479,11 +479,11 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     planted = batch_src >= 0
     say(f"4. Catch re-uploads: the scanners' upload queue holds {total:,} scans; the demo planted")
     say(f"   {int(planted.sum()):,} re-uploads of scans in the same queue and {n_again:,} of catalogued bolts, each")
-    say(f"   differing from its first upload in 0 to {MAX_CHANGED} of its {ACTIVE} features "
+    say(f"   differing from its first upload in 0 to {MAX_CHANGED} of its {WEIGHT} features "
         f"(a match: >= {MIN_OVERLAP} shared features)")
     bar = TqdmProgress(delay=0.0, file=sys.stderr) if progress else False
     try:
-        labels, summary = dedupe(uploads, min_overlap=MIN_OVERLAP, mode="components", recall=DEDUPE_RECALL,
+        labels, summary = label_near_duplicates(uploads, min_overlap=MIN_OVERLAP, mode="components", recall=NEAR_DUPLICATE_RECALL,
                                  seed=code_seed(5), progress=bar, return_summary=True)
     finally:
         if bar:
@@ -493,15 +493,15 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     merged = labels != np.arange(total)
     unplanted_merges = int(np.count_nonzero(merged & (group != group[labels])))
     if summary.method == "banding":
-        z = ACTIVE - changed[planted]
-        chance = _banding.s_curve(z / (2 * ACTIVE - z), summary.bands, summary.rows)
+        z = WEIGHT - changed[planted]
+        chance = _banding.s_curve(z / (2 * WEIGHT - z), summary.bands, summary.rows)
         how = f"banding, {summary.bands} bands of {summary.rows} rows"
     else:
         chance = np.ones(int(planted.sum()))
         how = "exact index"
     expected_found = float(np.sum(chance))
     found_sigma = float(np.sqrt(np.sum(chance * (1.0 - chance))))
-    say(f"   dedupe ({how}; mode components): {summary.groups:,} distinct scans, {summary.duplicates:,} "
+    say(f"   near-duplicates ({how}; mode components): {summary.groups:,} distinct scans, {summary.duplicates:,} "
         f"re-uploads grouped in {summary.seconds['total']:.2f} s")
     say(f"     planted re-uploads found {found_in_batch:,} of {int(planted.sum()):,}; model {expected_found:,.1f} "
         f"(+/- {found_sigma:.1f}) found directly; merges not planted {unplanted_merges:,}")
@@ -520,30 +520,30 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     unplanted_catalogue = int(matched.size - found_catalogue - in_queue)
     say(f"   find_or_add (exact) against the catalogue: catalogued re-uploads found {found_catalogue:,} of "
         f"{planted_catalogue:,};")
-    say(f"     in-queue re-uploads dedupe had missed {in_queue:,}; matches not planted {unplanted_catalogue:,}; "
+    say(f"     in-queue re-uploads the labelling had missed {in_queue:,}; matches not planted {unplanted_catalogue:,}; "
         f"{int(is_new.sum()):,} new bolts added")
-    seconds["dedupe"] = time.perf_counter() - t0
+    seconds["near-duplicates"] = time.perf_counter() - t0
     say()
 
     # -- 5. health as the store fills ----------------------------------------
     t0 = time.perf_counter()
     h = store.health()
-    capacity = h.capacity
-    final = int(math.floor(FILL_TO * capacity)) + 1
-    say(f"5. Health as the catalogue keeps growing: later seasons add bolts up to {FILL_TO:.0%} of the capacity")
-    say(f"   ({_n(capacity)} bolts; warning level {WARN_FRACTION:.0%}). Each row probes random unknown bolts")
-    say("   (store.probe); store.watch reports every status change (>>).")
-    say("   bolts stored    fill  headroom   false hits per query:                 probes  status")
-    say("                          [bolts]   model   probe (95% CI)")
+    limit = h.limit
+    final = int(math.floor(FILL_TO * limit)) + 1
+    say(f"5. Health as the catalogue keeps growing: later seasons add bolts up to {FILL_TO:.0%} of the limit")
+    say(f"   ({_n(limit)} bolts; warning level {WARN_FRACTION:.0%}). Each row queries random unknown bolts")
+    say("   (store.measure_false_hits); store.watch reports every status change (>>).")
+    say("   bolts stored    fill  headroom   false hits per query:                queries  status")
+    say("                          [bolts]   model   measurement (95% CI)")
 
     def row(s):
         say(f"   {s.items:>12,}  {100 * s.fill:5.1f}%  {_n(s.headroom):>8}   {s.false_hit_now:.5f} "
-            f"{s.probes_hit / s.probes:.5f} ({s.low:.5f}-{s.high:.5f})  {s.probes:>6,}  {s.status}")
+            f"{s.queries_hit / s.queries:.5f} ({s.low:.5f}-{s.high:.5f})  {s.queries:>6,}  {s.status}")
 
     def stage(label):
         hh = store.health()
-        pr = store.probe(_probe_count(store, STAGE_PROBES), seed=code_seed(6) + len(stages))
-        stages.append(Stage(label, hh.items, hh.capacity, hh.headroom_codes, hh.false_hit_now, pr.queries,
+        pr = store.measure_false_hits(_measure_size(store, STAGE_QUERIES), seed=code_seed(6) + len(stages))
+        stages.append(Stage(label, hh.items, hh.limit, hh.headroom_codes, hh.false_hit_now, pr.queries,
                             pr.queries_hit, pr.low, pr.high, pr.predicted_rate, hh.status))
         curve.append((hh.items, hh.false_hit_now, hh.headroom_codes))
         row(stages[-1])
@@ -551,25 +551,25 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     row(stages[0])
     stage("uploads added")
     gen = np.random.default_rng(streams[7])
-    step = max(1_000, int(capacity / 100))
+    step = max(1_000, int(limit / 100))
     for mark in (0.9, 1.0, FILL_TO):
-        target = min(final, int(math.floor(mark * capacity)) + (1 if mark >= 1.0 else 0))
+        target = min(final, int(math.floor(mark * limit)) + (1 if mark >= 1.0 else 0))
         if target <= len(store):
             continue
         with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", CapacityWarning)
+            warnings.simplefilter("always", SaturationWarning)
             with _bar(progress, target - len(store), "adding bolts") as bar:
                 while len(store) < target:
                     n = min(step, target - len(store))
-                    store.add(Codes.random(n, BITS, ACTIVE, seed=int(gen.integers(2**63))))
+                    store.add(Codes.random(n, BITS, WEIGHT, seed=int(gen.integers(2**63))))
                     bar.update(n)
                     hh = store.health()
                     curve.append((hh.items, hh.false_hit_now, hh.headroom_codes))
         for w in caught:
-            if issubclass(w.category, CapacityWarning):
-                say(textwrap.fill(f">> CapacityWarning: {w.message}", width=100, initial_indent="   ",
+            if issubclass(w.category, SaturationWarning):
+                say(textwrap.fill(f">> SaturationWarning: {w.message}", width=100, initial_indent="   ",
                                   subsequent_indent="      ", break_on_hyphens=False))
-        stage(f"{mark:.0%} of capacity")
+        stage(f"{mark:.0%} of the limit")
     final_health = store.health()
     say("   store.health() now:")
     for line in str(final_health).splitlines():
@@ -632,14 +632,14 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
 
 def _plot(path, store, h, stages, curve) -> str:
-    """False-hit chance and headroom against bolts stored, with the probes; return the path."""
+    """False-hit chance and headroom against bolts stored, with the measurements; return the path."""
     import matplotlib
 
     matplotlib.use("Agg")
     import matplotlib.pyplot as plt
     import matplotlib.ticker
 
-    cap = float(h.capacity)
+    cap = float(h.limit)
     top = max(FILL_TO * cap, max(s.items for s in stages)) * 1.02
     x = np.linspace(1, top, 400)
     fig, (ax, bx) = plt.subplots(2, 1, figsize=(7.5, 7), dpi=110, sharex=True)
@@ -648,11 +648,11 @@ def _plot(path, store, h, stages, curve) -> str:
     ax.axhline(h.target_false_hit, color="tab:red", linestyle="--", label=f"target {h.target_false_hit:g}")
     for a in (ax, bx):
         a.axvline(h.warn_fraction * cap, color="tab:orange", linestyle=":", label=f"warning ({h.warn_fraction:.0%})")
-        a.axvline(cap, color="tab:red", linestyle=":", label=f"capacity {int(cap):,}")
+        a.axvline(cap, color="tab:red", linestyle=":", label=f"limit {int(cap):,}")
     items = np.array([s.items for s in stages], dtype=float)
-    rate = np.array([s.probes_hit / s.probes for s in stages])
+    rate = np.array([s.queries_hit / s.queries for s in stages])
     err = np.array([[r - s.low for r, s in zip(rate, stages)], [s.high - r for r, s in zip(rate, stages)]])
-    ax.errorbar(items, rate, yerr=err, fmt="s", color="black", capsize=4, label="probes of unknown bolts (95% CI)")
+    ax.errorbar(items, rate, yerr=err, fmt="s", color="black", capsize=4, label="measurements of unknown bolts (95% CI)")
     ax.set_ylabel("false hits per unknown-bolt query")
     ax.set_title("Quillmarsh catalogue: headroom as it fills")
     ax.legend(fontsize=8, loc="upper left")

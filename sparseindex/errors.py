@@ -15,7 +15,7 @@ Examples
 
 from __future__ import annotations
 
-__all__ = ["StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "CapacityWarning"]
+__all__ = ["StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "SaturationWarning"]
 
 
 class StoreFormatError(ValueError):
@@ -75,8 +75,8 @@ class FormatVersionWarning(UserWarning):
     """
 
 
-class CapacityWarning(UserWarning):
-    """An ``add`` took the store past its capacity at the false-hit target.
+class SaturationWarning(UserWarning):
+    """An ``add`` took the store past its limit (the codes at which the false-hit target is reached).
 
     Examples
     --------
@@ -88,6 +88,6 @@ class CapacityWarning(UserWarning):
     ...     warnings.simplefilter("always")
     ...     for k in range(40):
     ...         _ = store.add(Codes.random(1, 64, 4, seed=k))
-    >>> any(w.category is CapacityWarning for w in seen)
+    >>> any(w.category is SaturationWarning for w in seen)
     True
     """

@@ -1,11 +1,12 @@
-"""How full a store is: capacity, headroom, bit usage, probes and alerts.
+"""How full a store is: limit, headroom, bit usage, measurements and alerts.
 
-:meth:`Store.health` returns a :class:`Health`; :meth:`Store.probe` runs
-random unrelated queries and returns a :class:`ProbeResult`. This module
+:meth:`Store.health` returns a :class:`Health`; :meth:`Store.measure_false_hits` runs
+random unrelated queries and returns a :class:`FalseHitMeasurement`. This module
 reads the store (its running per-bit usage counts, weight histogram and
 serving counters) and the model; it never changes the store's codes.
 
-Two capacity figures are reported:
+Two figures for the model's limit (the stored codes at which the false-hit
+target is reached) are reported:
 
 * **uniform** — the hypergeometric model (``model.false_hit_per_code``)
   for queries of the store's nominal weight with uniformly random bits;
@@ -23,15 +24,15 @@ perfectly uniform store. The frequencies are therefore shrunk toward their
 mean by the positive-part James–Stein factor λ = max(0, 1 − noise variance
 / observed variance) (James & Stein 1961; the empirical-Bayes reading of
 Efron & Morris, JASA 1973): λ ≈ 0 for uniform data, ≈ 1 for real skew.
-Probes with ``source="usage"`` draw from the same shrunk frequencies.
+Measurements with ``source="usage"`` draw from the same shrunk frequencies.
 
-The *operative* capacity is the uniform one unless the usage-aware per-code
+The *operative* limit is the uniform one unless the usage-aware per-code
 chance is higher by more than three standard errors and by more than 10% —
-measurably and materially worse data lowers the capacity; sampling noise
+measurably and materially worse data lowers the limit; sampling noise
 alone never moves it (so the status does not flap).
 
-Status: ``"healthy"`` below ``warn_fraction`` of the operative capacity,
-``"filling"`` from there up to capacity, ``"saturated"`` past it, and
+Status: ``"healthy"`` below ``warn_fraction`` of the operative limit,
+``"filling"`` from there up to the limit, ``"saturated"`` past it, and
 ``"unknown"`` when the store has no false-hit target.
 """
 
@@ -46,9 +47,9 @@ import warnings
 import numpy as np
 
 from . import _kernels, model
-from .errors import CapacityWarning
+from .errors import SaturationWarning
 
-__all__ = ["Health", "ProbeResult", "STATUSES"]
+__all__ = ["Health", "FalseHitMeasurement", "STATUSES"]
 
 STATUSES = ("healthy", "filling", "saturated")
 UNKNOWN = "unknown"
@@ -67,10 +68,10 @@ def _finite(x):
 
 
 @dataclasses.dataclass(frozen=True)
-class ProbeResult:
-    """What a probe of random unrelated queries found.
+class FalseHitMeasurement:
+    """What a measurement of random unrelated queries found.
 
-    Every hit of a probe query is a false hit by construction (the queries
+    Every hit of a measurement query is a false hit by construction (the queries
     are random). ``rate`` is the fraction of queries with at least one hit,
     with the exact Clopper–Pearson 95% interval ``[low, high]`` (Clopper &
     Pearson, Biometrika 1934); ``upper`` is the one-sided 95% upper bound,
@@ -83,14 +84,14 @@ class ProbeResult:
     --------
     >>> from sparseindex import Codes, Store
     >>> store = Store(256, threshold=3, seed=1); _ = store.add(Codes.random(2_000, 256, 8, seed=1))
-    >>> r = store.probe(1_000, seed=3)      # a crowded little store: most random queries hit
+    >>> r = store.measure_false_hits(1_000, seed=3)      # a crowded little store: most random queries hit
     >>> r.queries, r.queries_hit, r.low <= r.rate <= r.high, round(r.predicted_rate, 3)
     (1000, 883, True, 0.878)
     """
 
     source: str
     queries: int
-    query_active: int
+    query_weight: int
     items: int
     queries_hit: int
     hits: int
@@ -111,7 +112,7 @@ class ProbeResult:
         --------
         >>> from sparseindex import Codes, Store
         >>> store = Store(256, threshold=3, seed=1); _ = store.add(Codes.random(500, 256, 8, seed=1))
-        >>> d = store.probe(200, seed=3).to_dict()
+        >>> d = store.measure_false_hits(200, seed=3).to_dict()
         >>> d["queries"], d["source"], sorted(d)[:3]
         (200, 'uniform', ['high', 'hits', 'hits_per_query'])
         """
@@ -123,7 +124,7 @@ class ProbeResult:
         else:
             seen = f"no hits: < {self.upper:.3g} per query (95% upper bound)"
         pred = "" if self.predicted_rate is None else f"; model {self.predicted_rate:.3g}"
-        return (f"probe of {self.queries:,} {self.source} queries ({self.query_active} bits) on "
+        return (f"measurement of {self.queries:,} {self.source} queries ({self.query_weight} bits) on "
                 f"{self.items:,} codes: {seen}{pred}; {self.hits:,} false hits in all")
 
 
@@ -138,11 +139,11 @@ class Health:
     Examples
     --------
     >>> from sparseindex import Codes, Store
-    >>> store = Store.for_target(2048, 40, false_hit=1e-6, capacity=50_000, seed=1)
-    >>> _ = store.add(Codes.random(1_000, 2048, 40, seed=2))
+    >>> store = Store.for_target(1536, 30, false_hit=1e-6, capacity=50_000, seed=1)
+    >>> _ = store.add(Codes.random(1_000, 1536, 30, seed=2))
     >>> h = store.health()
-    >>> h.status, h.items, h.capacity, h.headroom_codes
-    ('healthy', 1000, 1591814, 1590814.0)
+    >>> h.status, h.items, h.limit, h.headroom_codes
+    ('healthy', 1000, 1939219, 1938219.0)
     >>> print(str(h).splitlines()[0])
     status: HEALTHY  (1,000 codes stored, 0 removed awaiting compact)
     """
@@ -152,26 +153,26 @@ class Health:
     removed_pending: int
     bits: int
     threshold: int
-    segment: int | None
+    sample_size: int | None
     detectors: int
-    query_active: int | None
-    planned_active: int | None
+    query_weight: int | None
+    planned_weight: int | None
     target_false_hit: float | None
     target_capacity: int | None
     target_noise: float | None
     target_recall: float | None
     warn_fraction: float
-    capacity: float | None
-    capacity_basis: str
-    capacity_uniform: float | None
-    capacity_usage: float | None
+    limit: float | None
+    limit_basis: str
+    limit_uniform: float | None
+    limit_usage: float | None
     headroom_codes: float | None
     headroom_fraction: float | None
     fill_fraction: float | None
     false_hit_now: float | None
     false_hit_now_uniform: float | None
     false_hit_now_usage: float | None
-    false_hit_at_capacity: float | None
+    false_hit_at_limit: float | None
     per_code_uniform: float | None
     per_code_usage: float | None
     per_code_usage_stderr: float | None
@@ -185,7 +186,7 @@ class Health:
     weight_mean: float | None
     weight_max: int | None
     weight_offset: float | None
-    probe: ProbeResult | None
+    measurement: FalseHitMeasurement | None
     queries_total: int
     hits_total: int
     codes_added_total: int
@@ -194,20 +195,20 @@ class Health:
     seconds: float
 
     def to_dict(self) -> dict:
-        """Plain values (JSON-ready); infinities become None, the probe a dict.
+        """Plain values (JSON-ready); infinities become None, the measurement a dict.
 
         Examples
         --------
         >>> from sparseindex import Codes, Store
         >>> store = Store(64, threshold=2, seed=0); _ = store.add(Codes.random(10, 64, 4, seed=1))
         >>> d = store.health().to_dict()
-        >>> d["status"], d["items"], d["capacity"], d["probe"]
+        >>> d["status"], d["items"], d["limit"], d["measurement"]
         ('unknown', 10, None, None)
         """
         out = {}
         for f in dataclasses.fields(self):
             value = getattr(self, f.name)
-            if isinstance(value, ProbeResult):
+            if isinstance(value, FalseHitMeasurement):
                 value = value.to_dict()
             elif isinstance(value, float) and not math.isfinite(value):
                 value = None
@@ -238,8 +239,8 @@ class Health:
         Examples
         --------
         >>> from sparseindex import Codes, Store
-        >>> store = Store.for_target(2048, 40, false_hit=1e-6, capacity=50_000, seed=1)
-        >>> _ = store.add(Codes.random(1_000, 2048, 40, seed=2))
+        >>> store = Store.for_target(1536, 30, false_hit=1e-6, capacity=50_000, seed=1)
+        >>> _ = store.add(Codes.random(1_000, 1536, 30, seed=2))
         >>> text = store.health().to_openmetrics(prefix="depot")
         >>> [line for line in text.splitlines() if line.startswith("depot_items")], text.splitlines()[-1]
         (['depot_items 1000'], '# EOF')
@@ -257,7 +258,7 @@ class _Cache:
 
     def __init__(self):
         self.uniform = {}
-        self.usage = None  # (churn at estimate, items, query_active, UsageFalseHits)
+        self.usage = None  # (churn at estimate, items, query_weight, UsageFalseHits)
 
 
 def _cache(store) -> _Cache:
@@ -280,27 +281,27 @@ def _weights(hist: np.ndarray):
     return int(used[0]), mean, int(used[-1])
 
 
-def _nominal_active(store, mean_weight):
-    """Query weight the models assume: the plan's ``active``, else the mean stored weight.
+def _nominal_weight(store, mean_weight):
+    """Query weight the models assume: the plan's ``weight``, else the mean stored weight.
 
     ``store`` is a Store or a ShardedStore (anything with ``plan``, ``bits``, ``threshold``).
     """
     if store.plan is not None:
-        return int(store.plan.active)
+        return int(store.plan.weight)
     if mean_weight is None:
         return None
     return min(store.bits, max(store.threshold, int(round(mean_weight))))
 
 
 def _uniform(store, q, target):
-    """(per-code chance, capacity) under the uniform model; memoised."""
+    """(per-code chance, limit) under the uniform model; memoised."""
     key = (q, target)
     memo = _cache(store).uniform
     if key not in memo:
-        segment = q if store.segment is None else min(store.segment, q)
-        threshold = min(store.threshold, segment)
-        per_code = float(model.false_hit_per_code(store.bits, q, segment, threshold, store.detectors, q))
-        cap = None if target is None else model.capacity(per_code, target)
+        sample_size = q if store.sample_size is None else min(store.sample_size, q)
+        threshold = min(store.threshold, sample_size)
+        per_code = float(model.false_hit_per_code(store.bits, q, sample_size, threshold, store.detectors, q))
+        cap = None if target is None else model.code_limit(per_code, target)
         memo[key] = (per_code, cap)
     return memo[key]
 
@@ -367,7 +368,7 @@ def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh
     >>> from sparseindex import Codes, Store
     >>> store = Store(256, threshold=4, seed=0); _ = store.add(Codes.random(100, 256, 8, seed=1))
     >>> h = compute(store, false_hit=0.01)
-    >>> h.status, h.capacity, compute(store).status       # no target: status unknown
+    >>> h.status, h.limit, compute(store).status       # no target: status unknown
     ('healthy', 377, 'unknown')
     """
     started = time.perf_counter()
@@ -388,21 +389,21 @@ def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh
         if target is None and plan is not None:
             target = plan.target_false_hit
         warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
-        q = _nominal_active(store, _weights(hist)[1])
+        q = _nominal_weight(store, _weights(hist)[1])
         per_uniform = cap_uniform = None
         if q is not None:
             per_uniform, cap_uniform = _uniform(store, q, target)
         est = _usage_estimate(store, q, usage, items, refresh_fraction, refresh)
     return derive(
-        bits=store.bits, threshold=store.threshold, segment=store.segment, detectors=store.detectors, plan=plan,
+        bits=store.bits, threshold=store.threshold, sample_size=store.sample_size, detectors=store.detectors, plan=plan,
         target=target, warn=warn, usage=usage, hist=hist, items=items, removed_pending=removed_pending, q=q,
-        per_uniform=per_uniform, cap_uniform=cap_uniform, estimate=est, probe=store._probe, served=served,
+        per_uniform=per_uniform, cap_uniform=cap_uniform, estimate=est, measurement=store._measurement, served=served,
         memory=memory, started=started,
     )
 
 
-def derive(*, bits, threshold, segment, detectors, plan, target, warn, usage, hist, items, removed_pending, q,
-           per_uniform, cap_uniform, estimate, probe, served, memory, started) -> Health:
+def derive(*, bits, threshold, sample_size, detectors, plan, target, warn, usage, hist, items, removed_pending, q,
+           per_uniform, cap_uniform, estimate, measurement, served, memory, started) -> Health:
     """A :class:`Health` from gathered inputs; one store or many shards alike.
 
     ``usage`` and ``hist`` are the live codes' per-bit counts and weight
@@ -417,7 +418,7 @@ def derive(*, bits, threshold, segment, detectors, plan, target, warn, usage, hi
         since, (e, lam) = estimate
         per_usage, se_usage, sampled = e.per_code, e.per_code_stderr, e.codes_sampled
         if target is not None:
-            cap_usage = model.capacity(min(1.0, per_usage), target) if per_usage > 0 else math.inf
+            cap_usage = model.code_limit(min(1.0, per_usage), target) if per_usage > 0 else math.inf
     basis = "uniform"
     per_op, cap = per_uniform, cap_uniform
     if (per_usage is not None and per_uniform is not None
@@ -440,15 +441,15 @@ def derive(*, bits, threshold, segment, detectors, plan, target, warn, usage, hi
     total = float(usage.sum())
     return Health(
         status=status, items=items, removed_pending=removed_pending, bits=bits,
-        threshold=threshold, segment=segment, detectors=detectors, query_active=q,
-        planned_active=None if plan is None else int(plan.active),
+        threshold=threshold, sample_size=sample_size, detectors=detectors, query_weight=q,
+        planned_weight=None if plan is None else int(plan.weight),
         target_false_hit=target, target_capacity=None if plan is None else int(plan.target_capacity),
         target_noise=None if plan is None else float(plan.noise),
         target_recall=None if plan is None else float(plan.target_recall),
-        warn_fraction=float(warn), capacity=cap, capacity_basis=basis, capacity_uniform=cap_uniform,
-        capacity_usage=cap_usage, headroom_codes=headroom, headroom_fraction=headroom_frac, fill_fraction=fill,
+        warn_fraction=float(warn), limit=cap, limit_basis=basis, limit_uniform=cap_uniform,
+        limit_usage=cap_usage, headroom_codes=headroom, headroom_fraction=headroom_frac, fill_fraction=fill,
         false_hit_now=now_s if basis == "usage" else now_u, false_hit_now_uniform=now_u,
-        false_hit_now_usage=now_s, false_hit_at_capacity=at_cap, per_code_uniform=per_uniform,
+        false_hit_now_usage=now_s, false_hit_at_limit=at_cap, per_code_uniform=per_uniform,
         per_code_usage=per_usage, per_code_usage_stderr=se_usage, usage_codes_sampled=sampled,
         usage_changes_since=since, usage_shrinkage=lam,
         # Hill's effective number of order 2 (inverse Simpson): (sum u)^2 / sum u^2
@@ -456,24 +457,24 @@ def derive(*, bits, threshold, segment, detectors, plan, target, warn, usage, hi
         hottest_bit_load_ratio=None if total == 0 else float(usage.max()) / (total / bits),
         unused_bits=int(bits - np.count_nonzero(usage)),
         weight_min=w_min, weight_mean=w_mean, weight_max=w_max,
-        weight_offset=None if (plan is None or w_mean is None) else w_mean - plan.active,
-        probe=probe, queries_total=served["queries"], hits_total=served["hits"],
+        weight_offset=None if (plan is None or w_mean is None) else w_mean - plan.weight,
+        measurement=measurement, queries_total=served["queries"], hits_total=served["hits"],
         codes_added_total=served["added"], codes_removed_total=served["removed"], memory_bytes=memory,
         seconds=time.perf_counter() - started,
     )
 
 
-def classify(items, capacity, warn_fraction) -> str:
-    """Status level of ``items`` codes against ``capacity``.
+def classify(items, limit, warn_fraction) -> str:
+    """Status level of ``items`` codes against the model's ``limit``.
 
     Examples
     --------
     >>> classify(10, 100, 0.8), classify(80, 100, 0.8), classify(101, 100, 0.8)
     ('healthy', 'filling', 'saturated')
     """
-    if items > capacity:
+    if items > limit:
         return "saturated"
-    if items >= warn_fraction * capacity:
+    if items >= warn_fraction * limit:
         return "filling"
     return "healthy"
 
@@ -483,8 +484,8 @@ def classify(items, capacity, warn_fraction) -> str:
 # ---------------------------------------------------------------------------
 
 
-def run_probe(store, queries=10_000, *, source="uniform", seed=None, batch=2048) -> ProbeResult:
-    """Random unrelated queries against ``store`` (call :meth:`Store.probe`).
+def measure_false_hits(store, queries=10_000, *, source="uniform", seed=None, batch=2048) -> FalseHitMeasurement:
+    """Random unrelated queries against ``store`` (call :meth:`Store.measure_false_hits`).
 
     Queries go through the ordinary batch path ``batch`` at a time; they do
     not count as served queries. O(queries · query cost).
@@ -493,53 +494,53 @@ def run_probe(store, queries=10_000, *, source="uniform", seed=None, batch=2048)
     --------
     >>> from sparseindex import Codes, Store
     >>> store = Store(256, threshold=3, seed=1); _ = store.add(Codes.random(500, 256, 8, seed=1))
-    >>> r = run_probe(store, 300, seed=4, batch=100)
+    >>> r = measure_false_hits(store, 300, seed=4, batch=100)
     >>> r.queries, r.source, store.health().queries_total
     (300, 'uniform', 0)
     """
     from .codes import Codes
 
     if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
-        raise ValueError(f"probe: queries={queries!r} must be a positive integer")
+        raise ValueError(f"measure_false_hits: queries={queries!r} must be a positive integer")
     if source not in ("uniform", "usage"):
-        raise ValueError(f"probe: source={source!r} must be 'uniform' or 'usage'")
+        raise ValueError(f"measure_false_hits: source={source!r} must be 'uniform' or 'usage'")
     if seed is None:
         seed = int(np.random.SeedSequence().generate_state(1)[0])
     started = time.perf_counter()
     health = compute(store)
-    q = health.query_active
+    q = health.query_weight
     if q is None or health.items == 0:
-        raise ValueError("probe: the store is empty; there is nothing to probe")
+        raise ValueError("measure_false_hits: the store is empty; there is nothing to measure")
     if source == "uniform":
-        probes = Codes.random(int(queries), store.bits, q, seed=seed)
+        unrelated = Codes.random(int(queries), store.bits, q, seed=seed)
         predicted = health.per_code_uniform
     else:
         store._ensure_usage()
         with store._rw.reading():
             usage = store._usage.copy()
         if not usage.any():
-            raise ValueError("probe: no bit is in use; a usage probe needs stored codes")
+            raise ValueError("measure_false_hits: no bit is in use; a usage measurement needs stored codes")
         p = model.usage_bernoulli(usage_frequencies(usage, health.items)[0], q)
-        probes = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=store.bits)
+        unrelated = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=store.bits)
         predicted = health.per_code_usage
     queries_hit, hits = 0, 0
     items = health.items
     for a in range(0, int(queries), batch):
-        result = store._query_batch(probes[a : a + batch], 0)
+        result = store._query_batch(unrelated[a : a + batch], 0)
         counts = result.counts
         queries_hit += int(np.count_nonzero(counts))
         hits += int(counts.sum())
     n = int(queries)
     low, high = model.clopper_pearson(queries_hit, n)
     upper = model.clopper_pearson_upper(queries_hit, n)
-    result = ProbeResult(
-        source=source, queries=n, query_active=q, items=items, queries_hit=queries_hit, hits=hits,
+    result = FalseHitMeasurement(
+        source=source, queries=n, query_weight=q, items=items, queries_hit=queries_hit, hits=hits,
         rate=queries_hit / n, low=float(low), high=float(high), upper=float(upper), hits_per_query=hits / n,
         predicted_rate=None if predicted is None else float(model.store_false_hit(min(1.0, predicted), items)),
         predicted_hits=None if predicted is None else float(items * predicted),
         seed=int(seed), seconds=time.perf_counter() - started,
     )
-    store._probe = result
+    store._measurement = result
     return result
 
 
@@ -549,40 +550,40 @@ def run_probe(store, queries=10_000, *, source="uniform", seed=None, batch=2048)
 
 
 class _Watch:
-    """Status alerts of one store: a callback per change, a warning past capacity."""
+    """Status alerts of one store: a callback per change, a warning past the limit."""
 
     def __init__(self, callback, warn_fraction, false_hit):
         self.callback = callback
         self.warn_fraction = warn_fraction
         self.false_hit = false_hit
         self.status = None
-        self._capacity = None  # from the last full report, valid until the model refreshes
+        self._limit = None  # from the last full report, valid until the model refreshes
         self._churn_at = 0
         self._items_at = 0
 
     def changed(self, store, refresh_fraction=0.05) -> None:
-        # Fast path for streams of small adds: the capacity only moves when
+        # Fast path for streams of small adds: the limit only moves when
         # the usage-aware estimate refreshes, so until then the status is
-        # items against the last capacity; a full report only on a change.
+        # items against the last limit; a full report only on a change.
         items = len(store)
         churn = _churn(store)
         fresh = abs(churn - self._churn_at) < max(1, refresh_fraction * max(items, self._items_at))
-        if self._capacity is not None and fresh and classify(items, self._capacity, self.warn_fraction) == self.status:
+        if self._limit is not None and fresh and classify(items, self._limit, self.warn_fraction) == self.status:
             return
         health = compute(store, refresh_fraction=refresh_fraction)
-        if not fresh or self._capacity is None:
+        if not fresh or self._limit is None:
             self._churn_at, self._items_at = churn, items
-        self._capacity = health.capacity
+        self._limit = health.limit
         previous, current = self.status, health.status
         self.status = current
         if previous is None or previous == current:
             return
         if current == "saturated":
             warnings.warn(
-                f"the store now holds {health.items:,} codes, past its capacity of {_count(health.capacity)} "
+                f"the store now holds {health.items:,} codes, past its limit of {_count(health.limit)} "
                 f"at the false-hit target {health.target_false_hit:g} per query "
                 f"(predicted now: {health.false_hit_now:.3g})",
-                CapacityWarning,
+                SaturationWarning,
                 stacklevel=4,
             )
         if self.callback is not None:
@@ -613,9 +614,9 @@ def _text(h: Health) -> str:
     lines = [f"status: {h.status.upper()}  ({h.items:,} codes stored, {h.removed_pending:,} removed awaiting compact)"]
     if h.target_false_hit is not None:
         lines.append(
-            f"capacity at {h.target_false_hit:g} false hits per query: {_count(h.capacity)} codes "
-            f"({h.capacity_basis} model; uniform {_count(h.capacity_uniform)}, "
-            f"usage-aware {_count(h.capacity_usage)})"
+            f"limit at {h.target_false_hit:g} false hits per query: {_count(h.limit)} codes "
+            f"({h.limit_basis} model; uniform {_count(h.limit_uniform)}, "
+            f"usage-aware {_count(h.limit_usage)})"
         )
         if h.fill_fraction is not None:
             lines.append(
@@ -623,12 +624,12 @@ def _text(h: Health) -> str:
                 f"warning at {100 * h.warn_fraction:.0f}% full)"
             )
     else:
-        lines.append("capacity: no false-hit target (create with for_target or call watch(false_hit=...))")
+        lines.append("limit: no false-hit target (create with for_target or call watch(false_hit=...))")
     lines.append(
         f"false hit per unrelated query now: {_chance(h.false_hit_now)} (uniform {_chance(h.false_hit_now_uniform)}, "
         f"usage-aware {_chance(h.false_hit_now_usage)}"
         + (f" from {h.usage_codes_sampled} sampled codes" if h.usage_codes_sampled else "")
-        + f"); at capacity {_chance(h.false_hit_at_capacity)}"
+        + f"); at the limit {_chance(h.false_hit_at_limit)}"
     )
     if h.effective_bits is not None:
         lines.append(
@@ -636,12 +637,12 @@ def _text(h: Health) -> str:
             f"{h.hottest_bit_load_ratio:.2f}x the mean load, {h.unused_bits:,} bits unused"
         )
     if h.weight_mean is not None:
-        planned = "" if h.planned_active is None else f"; planned {h.planned_active} ({h.weight_offset:+.2f})"
+        planned = "" if h.planned_weight is None else f"; planned {h.planned_weight} ({h.weight_offset:+.2f})"
         lines.append(
             f"code weight: {h.weight_min}..{h.weight_max} set bits, mean {h.weight_mean:.2f}{planned}"
         )
-    if h.probe is not None:
-        lines.append(str(h.probe))
+    if h.measurement is not None:
+        lines.append(str(h.measurement))
     lines.append(
         f"served: {h.queries_total:,} queries, {h.hits_total:,} hits, {h.codes_added_total:,} codes added, "
         f"{h.codes_removed_total:,} removed; memory {h.memory_bytes / 2**20:,.1f} MiB"
@@ -693,28 +694,28 @@ def metric_table(h: Health, prefix: str = "sparseindex"):
         fams.append((f"{p}_{name}", "counter", "", text, [(f"{p}_{name}_total", {}, value)]))
 
     fams.append((f"{p}_store", "info", "", "Store parameters.", [(f"{p}_store_info", {
-        "bits": h.bits, "threshold": h.threshold, "segment": "all" if h.segment is None else h.segment,
-        "detectors": h.detectors, "capacity_basis": h.capacity_basis}, 1)]))
+        "bits": h.bits, "threshold": h.threshold, "sample_size": "all" if h.sample_size is None else h.sample_size,
+        "detectors": h.detectors, "limit_basis": h.limit_basis}, 1)]))
     fams.append((f"{p}_status", "stateset", "", "Fill status against the false-hit target.",
                  [(f"{p}_status", {f"{p}_status": s}, int(h.status == s)) for s in STATUSES + (UNKNOWN,)]))
     gauge("items", "", "Codes stored (removed ones excluded).", [("items", {}, h.items)])
     gauge("removed_pending", "", "Removed codes whose space compact has not reclaimed.",
           [("removed_pending", {}, h.removed_pending)])
-    gauge("capacity_codes", "codes", "Codes the store can hold at its false-hit target.",
-          [("capacity_codes", {"model": "operative"}, h.capacity),
-           ("capacity_codes", {"model": "uniform"}, h.capacity_uniform),
-           ("capacity_codes", {"model": "usage"}, h.capacity_usage)])
-    gauge("headroom_codes", "codes", "Codes that can still be added before capacity.",
+    gauge("limit_codes", "codes", "Codes the store can hold at its false-hit target.",
+          [("limit_codes", {"model": "operative"}, h.limit),
+           ("limit_codes", {"model": "uniform"}, h.limit_uniform),
+           ("limit_codes", {"model": "usage"}, h.limit_usage)])
+    gauge("headroom_codes", "codes", "Codes that can still be added before the limit.",
           [("headroom_codes", {}, h.headroom_codes)])
-    gauge("headroom_ratio", "ratio", "Headroom as a fraction of capacity.", [("headroom_ratio", {}, h.headroom_fraction)])
-    gauge("fill_ratio", "ratio", "Items divided by capacity.", [("fill_ratio", {}, h.fill_fraction)])
+    gauge("headroom_ratio", "ratio", "Headroom as a fraction of the limit.", [("headroom_ratio", {}, h.headroom_fraction)])
+    gauge("fill_ratio", "ratio", "Items divided by the limit.", [("fill_ratio", {}, h.fill_fraction)])
     gauge("target_false_hit_ratio", "ratio", "Target chance of a false hit per unrelated query.",
           [("target_false_hit_ratio", {}, h.target_false_hit)])
     gauge("false_hit_ratio", "ratio", "Predicted chance of a false hit per unrelated query.",
           [("false_hit_ratio", {"model": "operative", "at": "now"}, h.false_hit_now),
            ("false_hit_ratio", {"model": "uniform", "at": "now"}, h.false_hit_now_uniform),
            ("false_hit_ratio", {"model": "usage", "at": "now"}, h.false_hit_now_usage),
-           ("false_hit_ratio", {"model": "operative", "at": "capacity"}, h.false_hit_at_capacity)])
+           ("false_hit_ratio", {"model": "operative", "at": "limit"}, h.false_hit_at_limit)])
     gauge("effective_bits", "bits", "Effective number of bits in use (inverse Simpson index).",
           [("effective_bits", {}, h.effective_bits)])
     gauge("unused_bits", "bits", "Bits no stored code sets.", [("unused_bits", {}, h.unused_bits)])
@@ -723,19 +724,19 @@ def metric_table(h: Health, prefix: str = "sparseindex"):
     gauge("code_weight_bits", "bits", "Set bits per stored code.",
           [("code_weight_bits", {"stat": "min"}, h.weight_min), ("code_weight_bits", {"stat": "mean"}, h.weight_mean),
            ("code_weight_bits", {"stat": "max"}, h.weight_max)])
-    gauge("planned_active_bits", "bits", "Set bits per code the plan assumed.",
-          [("planned_active_bits", {}, h.planned_active)])
+    gauge("planned_weight_bits", "bits", "Set bits per code the plan assumed.",
+          [("planned_weight_bits", {}, h.planned_weight)])
     gauge("memory_bytes", "bytes", "Memory held by codes, postings and bookkeeping.",
           [("memory_bytes", {}, h.memory_bytes)])
-    if h.probe is not None:
-        pr = h.probe
-        gauge("probe_false_hit_ratio", "ratio", "False-hit rate per query a probe observed, with its 95% interval.",
-              [("probe_false_hit_ratio", {"source": pr.source, "value": "observed"}, pr.rate),
-               ("probe_false_hit_ratio", {"source": pr.source, "value": "low"}, pr.low),
-               ("probe_false_hit_ratio", {"source": pr.source, "value": "high"}, pr.high),
-               ("probe_false_hit_ratio", {"source": pr.source, "value": "upper"}, pr.upper),
-               ("probe_false_hit_ratio", {"source": pr.source, "value": "predicted"}, pr.predicted_rate)])
-        gauge("probe_queries", "", "Queries the latest probe ran.", [("probe_queries", {"source": pr.source}, pr.queries)])
+    if h.measurement is not None:
+        pr = h.measurement
+        gauge("measured_false_hit_ratio", "ratio", "False-hit rate per query a measurement observed, with its 95% interval.",
+              [("measured_false_hit_ratio", {"source": pr.source, "value": "observed"}, pr.rate),
+               ("measured_false_hit_ratio", {"source": pr.source, "value": "low"}, pr.low),
+               ("measured_false_hit_ratio", {"source": pr.source, "value": "high"}, pr.high),
+               ("measured_false_hit_ratio", {"source": pr.source, "value": "upper"}, pr.upper),
+               ("measured_false_hit_ratio", {"source": pr.source, "value": "predicted"}, pr.predicted_rate)])
+        gauge("measured_queries", "", "Queries the latest measurement ran.", [("measured_queries", {"source": pr.source}, pr.queries)])
     counter("queries", "Queries answered.", h.queries_total)
     counter("hits", "Hits returned.", h.hits_total)
     counter("codes_added", "Codes added.", h.codes_added_total)

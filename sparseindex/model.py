@@ -1,7 +1,7 @@
 """The analytic false-hit and recall model for detector banks.
 
 Every stored code owns a bank of ``detectors``; each detector samples
-``segment`` of the code's set bits and fires on a query that has at least
+``sample_size`` of the code's set bits and fires on a query that has at least
 ``threshold`` of them set.  The chances that matter for sizing a store are
 hypergeometric tail sums, and this module computes them exactly in log space:
 
@@ -10,7 +10,7 @@ hypergeometric tail sums, and this module computes them exactly in log space:
   random query, as the mixture over the query's overlap with the code;
 * :func:`recall` -- a copy of a stored code that lost some of its set bits;
 * :func:`detector_failure` -- a detector after bit positions die at random;
-* :func:`store_false_hit` and :func:`capacity` -- a store of many codes.
+* :func:`store_false_hit` and :func:`code_limit` -- a store of many codes.
 
 Real stores use some bits far more than others.  The usage-aware model
 replaces the uniformly random query by a conditional Poisson query
@@ -25,7 +25,7 @@ Dempster & Liu 1994) whose inclusion chances follow the measured usage:
   a sample of its codes, with a standard error;
 * :func:`sample_usage_queries` -- exact random queries of that model;
 * :func:`clopper_pearson` and :func:`clopper_pearson_upper` -- exact
-  intervals for the false-hit rate a probe measures.
+  intervals for the false-hit rate a measurement measures.
 
 The hypergeometric functions accept numpy arrays for any parameter (they
 broadcast) and then return arrays; with scalar arguments they return Python
@@ -59,7 +59,7 @@ from ._config import kernel
 __all__ = [
     "PlanError",
     "UsageFalseHits",
-    "capacity",
+    "code_limit",
     "clopper_pearson",
     "clopper_pearson_upper",
     "code_fire_probability",
@@ -88,7 +88,7 @@ class PlanError(ValueError):
     --------
     >>> from sparseindex import plan
     >>> try:
-    ...     plan(2048, 40, false_hit=1e-9, capacity=10**6, noise=0.95)
+    ...     plan(1536, 30, false_hit=1e-9, capacity=10**6, noise=0.95)
     ... except PlanError as exc:
     ...     print(isinstance(exc, ValueError), str(exc)[:60])
     True false_hit=1e-09 at capacity=1,000,000 cannot be met together
@@ -167,22 +167,22 @@ def _need(ok, text, **named):
     raise ValueError(text.format(**vals))
 
 
-def _check_bits_active(bits, active):
+def _check_bits_weight(bits, weight):
     _need(bits >= 1, "bits={bits} must be >= 1", bits=bits)
-    _need(active >= 1, "active={active} must be >= 1", active=active)
-    _need(active <= bits, "active={active} must be <= bits={bits}",
-          active=active, bits=bits)
+    _need(weight >= 1, "weight={weight} must be >= 1", weight=weight)
+    _need(weight <= bits, "weight={weight} must be <= bits={bits}",
+          weight=weight, bits=bits)
 
 
-def _check_segment_threshold(segment, threshold, limit, limit_name):
-    _need(segment >= 1, "segment={segment} must be >= 1", segment=segment)
-    _need(segment <= limit, "segment={segment} must be <= " + limit_name
-          + "={limit}", segment=segment, limit=limit)
+def _check_sample_size_threshold(sample_size, threshold, limit, limit_name):
+    _need(sample_size >= 1, "sample_size={sample_size} must be >= 1", sample_size=sample_size)
+    _need(sample_size <= limit, "sample_size={sample_size} must be <= " + limit_name
+          + "={limit}", sample_size=sample_size, limit=limit)
     _need(threshold >= 1, "threshold={threshold} must be >= 1",
           threshold=threshold)
-    _need(threshold <= segment,
-          "threshold={threshold} must be <= segment={segment}",
-          threshold=threshold, segment=segment)
+    _need(threshold <= sample_size,
+          "threshold={threshold} must be <= sample_size={sample_size}",
+          threshold=threshold, sample_size=sample_size)
 
 
 def _check_detectors(detectors):
@@ -483,15 +483,15 @@ def _log_mixture(n, a, q, s, theta, D):
 # Public model
 # ---------------------------------------------------------------------------
 
-def lost_bits(active, noise):
-    """Number of set bits a noisy copy lacks: ``ceil(noise * active)``.
+def lost_bits(weight, noise):
+    """Number of set bits a noisy copy lacks: ``ceil(noise * weight)``.
 
     Products within 1e-9 of an integer count as that integer, so that for
-    example ``noise=0.1`` with ``active=30`` loses 3 bits, not 4.
+    example ``noise=0.1`` with ``weight=30`` loses 3 bits, not 4.
 
     Parameters
     ----------
-    active : int or array_like
+    weight : int or array_like
         Set bits of the stored code.
     noise : float or array_like
         Fraction of them the copy lacks, ``0 <= noise < 1``.
@@ -505,34 +505,34 @@ def lost_bits(active, noise):
     >>> lost_bits(40, 0.25), lost_bits(30, 0.1), lost_bits(7, 0.5)
     (10, 3, 4)
     """
-    scalar = _is_scalar(active, noise)
-    a = _int_param("active", active)
+    scalar = _is_scalar(weight, noise)
+    a = _int_param("weight", weight)
     rho = _real_param("noise", noise)
-    _need(a >= 1, "active={active} must be >= 1", active=a)
+    _need(a >= 1, "weight={weight} must be >= 1", weight=a)
     _check_noise(rho)
     k = np.ceil(rho * a - 1e-9)
     k = np.clip(k, 0, a)
     return int(k) if scalar else k.astype(np.int64)
 
 
-def detector_false_hit(bits, segment, threshold, query_active, *, log=False):
+def detector_false_hit(bits, sample_size, threshold, query_weight, *, log=False):
     """Chance that one detector fires on an unrelated random query.
 
-    The query is a uniformly random set of ``query_active`` of the ``bits``
+    The query is a uniformly random set of ``query_weight`` of the ``bits``
     positions; the detector fires when at least ``threshold`` of its
-    ``segment`` sampled positions are among them:
-    ``P[Hyp(bits, segment, query_active) >= threshold]``.
+    ``sample_size`` sampled positions are among them:
+    ``P[Hyp(bits, sample_size, query_weight) >= threshold]``.
 
     Parameters
     ----------
     bits : int or array_like
         Code width n, ``>= 1``.
-    segment : int or array_like
-        Sampled bits per detector s, ``1 <= segment <= bits``.
+    sample_size : int or array_like
+        Sampled bits per detector s, ``1 <= sample_size <= bits``.
     threshold : int or array_like
-        Firing threshold, ``1 <= threshold <= segment``.
-    query_active : int or array_like
-        Set bits of the query q, ``0 <= query_active <= bits``.
+        Firing threshold, ``1 <= threshold <= sample_size``.
+    query_weight : int or array_like
+        Set bits of the query q, ``0 <= query_weight <= bits``.
     log : bool, optional
         Return the natural logarithm of the chance.
 
@@ -553,28 +553,28 @@ def detector_false_hit(bits, segment, threshold, query_active, *, log=False):
     >>> round(detector_false_hit(10**6, 40, 40, 2000, log=True), 3)
     -248.976
     """
-    scalar = _is_scalar(bits, segment, threshold, query_active)
+    scalar = _is_scalar(bits, sample_size, threshold, query_weight)
     n = _int_param("bits", bits)
-    s = _int_param("segment", segment)
+    s = _int_param("sample_size", sample_size)
     th = _int_param("threshold", threshold)
-    q = _int_param("query_active", query_active)
+    q = _int_param("query_weight", query_weight)
     _need(n >= 1, "bits={bits} must be >= 1", bits=n)
-    _check_segment_threshold(s, th, n, "bits")
-    _need(q >= 0, "query_active={q} must be >= 0", q=q)
-    _need(q <= n, "query_active={q} must be <= bits={n}", q=q, n=n)
+    _check_sample_size_threshold(s, th, n, "bits")
+    _need(q >= 0, "query_weight={q} must be >= 0", q=q)
+    _need(q <= n, "query_weight={q} must be <= bits={n}", q=q, n=n)
     shape = np.broadcast_shapes(n.shape, s.shape, th.shape, q.shape)
     lv = _log_upper_tail(n, s, q, th).reshape(shape)
     return _out(lv if log else np.exp(lv), scalar)
 
 
-def false_hit_per_code(bits, active, segment, threshold, detectors=1,
-                       query_active=None, *, log=False):
+def false_hit_per_code(bits, weight, sample_size, threshold, detectors=1,
+                       query_weight=None, *, log=False):
     """Chance that one stored code is hit by an unrelated random query.
 
-    The stored code has ``active`` set bits and ``detectors`` detectors, each
-    sampling ``segment`` of them independently.  With the query's overlap
-    Z ~ Hyp(bits, active, query_active) with the code, the detectors fire
-    independently given Z = z, each with t(z) = P[Hyp(active, z, segment) >=
+    The stored code has ``weight`` set bits and ``detectors`` detectors, each
+    sampling ``sample_size`` of them independently.  With the query's overlap
+    Z ~ Hyp(bits, weight, query_weight) with the code, the detectors fire
+    independently given Z = z, each with t(z) = P[Hyp(weight, z, sample_size) >=
     threshold], so the chance is the mixture
     ``sum_z P[Z = z] * (1 - (1 - t(z))**detectors)``.
 
@@ -582,16 +582,16 @@ def false_hit_per_code(bits, active, segment, threshold, detectors=1,
     ----------
     bits : int or array_like
         Code width n.
-    active : int or array_like
-        Set bits of the stored code a, ``1 <= active <= bits``.
-    segment : int, array_like or None
-        Sampled bits per detector; ``None`` means all ``active`` bits.
+    weight : int or array_like
+        Set bits of the stored code a, ``1 <= weight <= bits``.
+    sample_size : int, array_like or None
+        Sampled bits per detector; ``None`` means all ``weight`` bits.
     threshold : int or array_like
-        Firing threshold, ``1 <= threshold <= segment``.
+        Firing threshold, ``1 <= threshold <= sample_size``.
     detectors : int or array_like, optional
         Detectors per code D, ``>= 1``.
-    query_active : int, array_like or None, optional
-        Set bits of the query; ``None`` means ``active``.
+    query_weight : int, array_like or None, optional
+        Set bits of the query; ``None`` means ``weight``.
     log : bool, optional
         Return the natural logarithm of the chance.
 
@@ -607,27 +607,27 @@ def false_hit_per_code(bits, active, segment, threshold, detectors=1,
 
     Examples
     --------
-    >>> f"{false_hit_per_code(2048, 40, 20, 10, detectors=4):.4e}"
-    '1.5622e-12'
-    >>> false_hit_per_code(2048, 40, 20, 10) == detector_false_hit(2048, 20, 10, 40)
+    >>> f"{false_hit_per_code(1536, 30, 20, 10, detectors=4):.4e}"
+    '9.9028e-13'
+    >>> false_hit_per_code(1536, 30, 20, 10) == detector_false_hit(1536, 20, 10, 30)
     True
     """
-    if segment is None:
-        segment = active
-    if query_active is None:
-        query_active = active
-    scalar = _is_scalar(bits, active, segment, threshold, detectors, query_active)
+    if sample_size is None:
+        sample_size = weight
+    if query_weight is None:
+        query_weight = weight
+    scalar = _is_scalar(bits, weight, sample_size, threshold, detectors, query_weight)
     n = _int_param("bits", bits)
-    a = _int_param("active", active)
-    s = _int_param("segment", segment)
+    a = _int_param("weight", weight)
+    s = _int_param("sample_size", sample_size)
     th = _int_param("threshold", threshold)
     D = _int_param("detectors", detectors)
-    q = _int_param("query_active", query_active)
-    _check_bits_active(n, a)
-    _check_segment_threshold(s, th, a, "active")
+    q = _int_param("query_weight", query_weight)
+    _check_bits_weight(n, a)
+    _check_sample_size_threshold(s, th, a, "weight")
     _check_detectors(D)
-    _need(q >= 0, "query_active={q} must be >= 0", q=q)
-    _need(q <= n, "query_active={q} must be <= bits={n}", q=q, n=n)
+    _need(q >= 0, "query_weight={q} must be >= 0", q=q)
+    _need(q <= n, "query_weight={q} must be <= bits={n}", q=q, n=n)
     arrs = np.broadcast_arrays(n, a, s, th, D, q)
     shape = arrs[0].shape
     n, a, s, th, D, q = (x.ravel() for x in arrs)
@@ -642,22 +642,22 @@ def false_hit_per_code(bits, active, segment, threshold, detectors=1,
     return _out(lv if log else np.exp(lv), scalar)
 
 
-def recall(active, segment, threshold, detectors=1, noise=0.0, *,
+def recall(weight, sample_size, threshold, detectors=1, noise=0.0, *,
            log=False, complement=False):
     """Chance that a noisy copy of a stored code is still recalled.
 
-    The copy lacks k = ``lost_bits(active, noise)`` of the code's set bits
+    The copy lacks k = ``lost_bits(weight, noise)`` of the code's set bits
     (replaced by bits outside the code, which no detector samples).  One
-    detector keeps Hyp(active, active - k, segment) of its sampled bits and
+    detector keeps Hyp(weight, weight - k, sample_size) of its sampled bits and
     fires when that is at least ``threshold``; the bank recalls the code when
     any of its independent detectors fires: ``1 - (1 - r1)**detectors``.
 
     Parameters
     ----------
-    active : int or array_like
+    weight : int or array_like
         Set bits of the stored code.
-    segment : int, array_like or None
-        Sampled bits per detector; ``None`` means all ``active`` bits.
+    sample_size : int, array_like or None
+        Sampled bits per detector; ``None`` means all ``weight`` bits.
     threshold : int or array_like
         Firing threshold.
     detectors : int or array_like, optional
@@ -683,16 +683,16 @@ def recall(active, segment, threshold, detectors=1, noise=0.0, *,
     >>> recall(40, 20, 10, noise=0.25)  # 10 lost bits: a 20-bit sample keeps >= 10
     1.0
     """
-    if segment is None:
-        segment = active
-    scalar = _is_scalar(active, segment, threshold, detectors, noise)
-    a = _int_param("active", active)
-    s = _int_param("segment", segment)
+    if sample_size is None:
+        sample_size = weight
+    scalar = _is_scalar(weight, sample_size, threshold, detectors, noise)
+    a = _int_param("weight", weight)
+    s = _int_param("sample_size", sample_size)
     th = _int_param("threshold", threshold)
     D = _int_param("detectors", detectors)
     rho = _real_param("noise", noise)
-    _need(a >= 1, "active={active} must be >= 1", active=a)
-    _check_segment_threshold(s, th, a, "active")
+    _need(a >= 1, "weight={weight} must be >= 1", weight=a)
+    _check_sample_size_threshold(s, th, a, "weight")
     _check_detectors(D)
     _check_noise(rho)
     k = np.clip(np.ceil(rho * a - 1e-9), 0, a)
@@ -711,22 +711,22 @@ def recall(active, segment, threshold, detectors=1, noise=0.0, *,
     return _out(lv if log else np.exp(lv), scalar)
 
 
-def detector_failure(bits, segment, threshold, lost, *, log=False):
+def detector_failure(bits, sample_size, threshold, lost, *, log=False):
     """Chance that a detector can no longer fire after bit positions die.
 
     ``lost`` of the ``bits`` positions die at random (they never read as
-    set).  The detector fails when more than ``segment - threshold`` of its
-    sampled positions are among them: ``P[Hyp(bits, lost, segment) >=
-    segment - threshold + 1]``.
+    set).  The detector fails when more than ``sample_size - threshold`` of its
+    sampled positions are among them: ``P[Hyp(bits, lost, sample_size) >=
+    sample_size - threshold + 1]``.
 
     Parameters
     ----------
     bits : int or array_like
         Code width n.
-    segment : int or array_like
-        Sampled bits per detector, ``1 <= segment <= bits``.
+    sample_size : int or array_like
+        Sampled bits per detector, ``1 <= sample_size <= bits``.
     threshold : int or array_like
-        Firing threshold, ``1 <= threshold <= segment``.
+        Firing threshold, ``1 <= threshold <= sample_size``.
     lost : int or array_like
         Dead positions, ``0 <= lost <= bits``.
     log : bool, optional
@@ -743,13 +743,13 @@ def detector_failure(bits, segment, threshold, lost, *, log=False):
     >>> detector_failure(2000, 20, 20, 0)
     0.0
     """
-    scalar = _is_scalar(bits, segment, threshold, lost)
+    scalar = _is_scalar(bits, sample_size, threshold, lost)
     n = _int_param("bits", bits)
-    s = _int_param("segment", segment)
+    s = _int_param("sample_size", sample_size)
     th = _int_param("threshold", threshold)
     m = _int_param("lost", lost)
     _need(n >= 1, "bits={bits} must be >= 1", bits=n)
-    _check_segment_threshold(s, th, n, "bits")
+    _check_sample_size_threshold(s, th, n, "bits")
     _need(m >= 0, "lost={lost} must be >= 0", lost=m)
     _need(m <= n, "lost={lost} must be <= bits={bits}", lost=m, bits=n)
     shape = np.broadcast_shapes(n.shape, s.shape, th.shape, m.shape)
@@ -825,7 +825,7 @@ def store_false_hit(per_code, items, *, log=False):
     return _out(lv if log else np.exp(lv), scalar)
 
 
-def capacity(per_code, false_hit, *, log=False):
+def code_limit(per_code, false_hit, *, log=False):
     """Largest number of stored codes whose store false-hit chance stays at
     or below ``false_hit``.
 
@@ -846,13 +846,13 @@ def capacity(per_code, false_hit, *, log=False):
     -------
     int, float or ndarray
         An ``int`` for scalar input (``math.inf`` when ``per_code`` is 0 or
-        the capacity exceeds the float range); a float64 array otherwise.
+        the limit exceeds the float range); a float64 array otherwise.
 
     Examples
     --------
-    >>> capacity(1e-15, 1e-9)
+    >>> code_limit(1e-15, 1e-9)
     1000000
-    >>> capacity(0.5, 0.75), capacity(0.0, 0.1)
+    >>> code_limit(0.5, 0.75), code_limit(0.0, 0.1)
     (2, inf)
     """
     scalar = _is_scalar(per_code, false_hit)
@@ -886,10 +886,44 @@ def capacity(per_code, false_hit, *, log=False):
             if not (np.any(up) or np.any(down)):
                 break
             M = M + up - down
+    # Near 2**52 one code moves the chance by about one rounding step, so the
+    # first guess can be off by more than three: bisect what is left. Past
+    # 2**52 only the guess's own rounding is settled, in steps of its spacing.
+    finite = np.isfinite(M)
+    if np.any(finite):
+        left = np.flatnonzero((finite & ((fix & within(M + 1.0)) | ((M > 0) & ~within(M)))).reshape(-1))
+        if left.size:
+            flat_M, flat_lp, flat_F = M.reshape(-1).copy(), lp.reshape(-1), F.reshape(-1)
+            for i in left:
+                flat_M[i] = _bisect_limit(flat_M[i], lambda m, i=i: bool(
+                    (_log_store_false_hit(flat_lp[i], m) <= np.log(flat_F[i])) if log
+                    else (np.exp(_log_store_false_hit(flat_lp[i], m)) <= flat_F[i])))
+            M = flat_M.reshape(M.shape)
     if scalar:
         m = float(M.reshape(()))
         return int(m) if math.isfinite(m) else math.inf
     return M
+
+
+def _bisect_limit(guess: float, within) -> float:
+    """Largest ``m >= 0`` with ``within(m)`` true, searched outward from ``guess``."""
+    unit = max(1.0, float(np.spacing(guess)))
+    step = unit
+    lo = guess
+    while lo > 0 and not within(lo):
+        lo, step = max(0.0, guess - step), step * 2
+    if not within(lo):
+        return 0.0
+    step = unit
+    hi = lo + unit
+    while within(hi):
+        lo, hi, step = hi, hi + step, step * 2
+    while hi - lo > unit:
+        mid = math.floor((lo + hi) / 2 / unit) * unit
+        if mid <= lo or mid >= hi:
+            break
+        lo, hi = (mid, hi) if within(mid) else (lo, mid)
+    return lo
 
 
 # ---------------------------------------------------------------------------
@@ -1139,15 +1173,15 @@ def _check_count(name, value, minimum=0):
     return value
 
 
-def _check_query_active(query_active, p):
-    q = _check_count("query_active", query_active)
+def _check_query_weight(query_weight, p):
+    q = _check_count("query_weight", query_weight)
     forced = int(np.count_nonzero(p == 1.0))
     possible = int(np.count_nonzero(p > 0.0))
     if q > possible:
-        raise ValueError(f"query_active={q} is impossible: only {possible} of the "
+        raise ValueError(f"query_weight={q} is impossible: only {possible} of the "
                          f"{p.size} bits have p > 0")
     if q < forced:
-        raise ValueError(f"query_active={q} is impossible: {forced} bits have "
+        raise ValueError(f"query_weight={q} is impossible: {forced} bits have "
                          "p == 1 and are always set")
     return q
 
@@ -1298,20 +1332,20 @@ def _ratio(part, other, log):
 
 # -- public usage-aware model ------------------------------------------------
 
-def inclusion_probabilities(p, query_active):
+def inclusion_probabilities(p, query_weight):
     """Chance that each bit is set in a conditional-Poisson query.
 
     The query sets independent Bernoulli(``p[i]``) bits and is conditioned on
-    exactly ``query_active`` set bits.  Bit i is then set with chance
+    exactly ``query_weight`` set bits.  Bit i is then set with chance
     ``pi_i = p_i P[S_-i = q - 1] / P[S = q]`` (S_-i: the count over the other
-    bits); the values sum to ``query_active``.
+    bits); the values sum to ``query_weight``.
 
     Parameters
     ----------
     p : array_like, shape (bits,)
         Bernoulli parameters, ``0 <= p[i] <= 1``.  Only the odds matter, up
         to one common factor.
-    query_active : int
+    query_weight : int
         Set bits of the query q.
 
     Returns
@@ -1333,7 +1367,7 @@ def inclusion_probabilities(p, query_active):
     [0.010989, 0.098901, 0.89011]
     """
     p = _check_probabilities(p)
-    q = _check_query_active(query_active, p)
+    q = _check_query_weight(query_weight, p)
     pt, qt = _centred(p, q)
     on, off = _cps_inclusion(pt, qt, _cps_suffix_table(pt, qt, q), q)
     with np.errstate(invalid="ignore"):
@@ -1356,11 +1390,11 @@ def _capped_targets(f, q):
     return pi
 
 
-def usage_bernoulli(frequencies, query_active, *, tol=1e-10, max_iter=200):
+def usage_bernoulli(frequencies, query_weight, *, tol=1e-10, max_iter=200):
     """Bernoulli parameters of the usage query for measured bit frequencies.
 
     Returns ``p`` such that the conditional-Poisson query of weight
-    ``query_active`` built on ``p`` (independent Bernoulli(p_i) bits given
+    ``query_weight`` built on ``p`` (independent Bernoulli(p_i) bits given
     exactly q set bits) sets bit i with chance proportional to its
     frequency: ``pi_i = q f_i / sum(f)``.  Where that exceeds 1 the bit is
     always set (``pi_i = 1``) and the other targets are rescaled to keep the
@@ -1371,7 +1405,7 @@ def usage_bernoulli(frequencies, query_active, *, tol=1e-10, max_iter=200):
     frequencies : array_like, shape (bits,)
         Per-bit usage: the fraction of stored codes with bit i set, or raw
         counts (only proportions matter).  Non-negative, not all zero.
-    query_active : int
+    query_weight : int
         Set bits of the query q; at most the number of used bits.
     tol : float, optional
         Stop when every log-odds of the achieved inclusion probability is
@@ -1382,7 +1416,7 @@ def usage_bernoulli(frequencies, query_active, *, tol=1e-10, max_iter=200):
     Returns
     -------
     ndarray, shape (bits,)
-        The Bernoulli parameters, scaled so that ``p.sum() == query_active``
+        The Bernoulli parameters, scaled so that ``p.sum() == query_weight``
         (the odds are unique up to a common factor; this picks one).
 
     Notes
@@ -1404,10 +1438,10 @@ def usage_bernoulli(frequencies, query_active, *, tol=1e-10, max_iter=200):
     [1.0, 0.5, 0.25, 0.25]
     """
     f = _check_frequencies(frequencies)
-    q = _check_count("query_active", query_active)
+    q = _check_count("query_weight", query_weight)
     used = int(np.count_nonzero(f > 0))
     if q > used:
-        raise ValueError(f"query_active={q} is impossible: only {used} of the "
+        raise ValueError(f"query_weight={q} is impossible: only {used} of the "
                          f"{f.size} bits are used (frequency > 0)")
     tol = float(_real_param("tol", tol))
     if not tol > 0:
@@ -1443,12 +1477,12 @@ def _check_frequencies(frequencies):
     return f
 
 
-def detector_fire_probability(p, sampled_bits, threshold, query_active, *,
+def detector_fire_probability(p, sampled_bits, threshold, query_weight, *,
                               log=False, complement=False):
     """Chance that a detector fires for a conditional-Poisson query.
 
     The query sets independent Bernoulli(``p[i]``) bits conditioned on
-    exactly ``query_active`` set bits; the detector fires when at least
+    exactly ``query_weight`` set bits; the detector fires when at least
     ``threshold`` of its ``sampled_bits`` are set:
     ``P[T >= threshold | S = q]`` with T the count over the sampled bits and
     S the count over all bits.
@@ -1462,7 +1496,7 @@ def detector_fire_probability(p, sampled_bits, threshold, query_active, *,
         2-D array with one detector a row, or a sequence of index arrays.
     threshold : int
         Firing threshold, ``1 <= threshold <=`` every detector's sample size.
-    query_active : int
+    query_weight : int
         Set bits of the query q.
     log : bool, optional
         Return the natural logarithm.
@@ -1490,17 +1524,17 @@ def detector_fire_probability(p, sampled_bits, threshold, query_active, *,
 
     Examples
     --------
-    >>> p = np.full(2048, 40 / 2048)
-    >>> f"{detector_fire_probability(p, np.arange(20), 10, 40):.6e}"
-    '3.910589e-13'
-    >>> f"{detector_false_hit(2048, 20, 10, 40):.6e}"
-    '3.910589e-13'
+    >>> p = np.full(1536, 30 / 1536)
+    >>> f"{detector_fire_probability(p, np.arange(20), 10, 30):.6e}"
+    '2.516507e-13'
+    >>> f"{detector_false_hit(1536, 20, 10, 30):.6e}"
+    '2.516507e-13'
     >>> hot = p.copy(); hot[:20] = 0.5   # the detector samples busy bits
-    >>> f"{detector_fire_probability(hot, np.arange(20), 10, 40):.4f}"
-    '0.3736'
+    >>> f"{detector_fire_probability(hot, np.arange(20), 10, 30):.4f}"
+    '0.3016'
     """
     p = _check_probabilities(p)
-    q = _check_query_active(query_active, p)
+    q = _check_query_weight(query_weight, p)
     indptr, flat, single = _bit_rows(sampled_bits, p.size, "sampled_bits")
     theta = _check_thresholds(threshold, indptr, "detector")
     pt, qt = _centred(p, q)
@@ -1519,7 +1553,7 @@ def _union_work(code_ptr, det_ptr, theta):
     return states * (sampled + 1.0) * sampled, nd
 
 
-def code_fire_probability(p, detector_bits, threshold, query_active, *,
+def code_fire_probability(p, detector_bits, threshold, query_weight, *,
                           log=False, complement=False, exact_limit=1 << 24):
     """Chance that at least one detector of one stored code fires.
 
@@ -1536,7 +1570,7 @@ def code_fire_probability(p, detector_bits, threshold, query_active, *,
         ``Store.detector_bits(id)`` returns, or a sequence of index arrays.
     threshold : int
         Firing threshold.
-    query_active : int
+    query_weight : int
         Set bits of the query q.
     log, complement : bool, optional
         As in :func:`detector_fire_probability`.
@@ -1566,7 +1600,7 @@ def code_fire_probability(p, detector_bits, threshold, query_active, *,
     True
     """
     p = _check_probabilities(p)
-    q = _check_query_active(query_active, p)
+    q = _check_query_weight(query_weight, p)
     indptr, flat, _ = _bit_rows(detector_bits, p.size, "detector_bits")
     theta = _check_thresholds(threshold, indptr, "detector")
     code_ptr = np.array([0, indptr.size - 1], dtype=np.int64)
@@ -1582,17 +1616,17 @@ def code_fire_probability(p, detector_bits, threshold, query_active, *,
     return float(out[0])
 
 
-def sample_usage_queries(p, query_active, count, *, seed=None):
+def sample_usage_queries(p, query_weight, count, *, seed=None):
     """Draw exact conditional-Poisson queries.
 
     Each query sets independent Bernoulli(``p[i]``) bits conditioned on
-    exactly ``query_active`` set bits.
+    exactly ``query_weight`` set bits.
 
     Parameters
     ----------
     p : array_like, shape (bits,)
         Per-bit Bernoulli parameters (e.g. from :func:`usage_bernoulli`).
-    query_active : int
+    query_weight : int
         Set bits per query q.
     count : int
         Number of queries.
@@ -1601,7 +1635,7 @@ def sample_usage_queries(p, query_active, count, *, seed=None):
 
     Returns
     -------
-    ndarray of int64, shape (count, query_active)
+    ndarray of int64, shape (count, query_weight)
         Sorted bit indices, one query a row:
         ``Codes.from_indices(result, bits=len(p))`` packs them.
 
@@ -1621,7 +1655,7 @@ def sample_usage_queries(p, query_active, count, *, seed=None):
     ((3, 5), True)
     """
     p = _check_probabilities(p)
-    q = _check_query_active(query_active, p)
+    q = _check_query_weight(query_weight, p)
     count = _check_count("count", count)
     rng = np.random.default_rng(seed)
     pt, qt = _centred(p, q)
@@ -1708,7 +1742,7 @@ def _codes_csr(codes, bits):
     return code_ptr, det_ptr, flat
 
 
-def usage_false_hits(p, codes, threshold, query_active, items, *,
+def usage_false_hits(p, codes, threshold, query_weight, items, *,
                      exact_limit=1 << 20):
     """Estimate the expected false hits per unrelated query of a whole store.
 
@@ -1729,7 +1763,7 @@ def usage_false_hits(p, codes, threshold, query_active, items, *,
         random sample without replacement of the stored codes.
     threshold : int
         Firing threshold of the store.
-    query_active : int
+    query_weight : int
         Set bits of the query q.
     items : int
         N, the number of stored codes, ``>= m``.
@@ -1763,7 +1797,7 @@ def usage_false_hits(p, codes, threshold, query_active, items, *,
     '93.2187'
     """
     p = _check_probabilities(p)
-    q = _check_query_active(query_active, p)
+    q = _check_query_weight(query_weight, p)
     items = _check_count("items", items, minimum=1)
     code_ptr, det_ptr, flat = _codes_csr(codes, p.size)
     m = code_ptr.size - 1
@@ -1850,7 +1884,7 @@ def clopper_pearson(hits, trials, confidence=0.95):
     hits : int
         Observed successes x (e.g. false hits), ``0 <= hits <= trials``.
     trials : int
-        Trials n (e.g. probe queries), ``>= 1``.
+        Trials n (e.g. measurement queries), ``>= 1``.
     confidence : float, optional
         Coverage, ``0 < confidence < 1``.
 
@@ -1864,7 +1898,7 @@ def clopper_pearson(hits, trials, confidence=0.95):
     -----
     Quantiles from ``scipy.stats.beta.ppf``.  The coverage is at least
     ``confidence`` for every true rate (the interval is conservative).  For
-    a one-sided upper bound, e.g. to report when a probe sees no hit, use
+    a one-sided upper bound, e.g. to report when a measurement sees no hit, use
     :func:`clopper_pearson_upper`.
 
     Examples

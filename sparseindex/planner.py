@@ -1,4 +1,4 @@
-"""Choose a store's segment, threshold and detector count from its targets.
+"""Choose a store's sample_size, threshold and detector count from its targets.
 
 :func:`plan` answers the sizing question a user actually has -- "codes of
 this width and weight, this many of them, queries this noisy, false hits
@@ -8,8 +8,8 @@ both targets.
 
 Search
 ------
-Cost is postings per stored code, ``detectors * segment``.  For a fixed
-segment s and detector count D both the false-hit chance and the recall fall
+Cost is postings per stored code, ``detectors * sample_size``.  For a fixed
+sample_size s and detector count D both the false-hit chance and the recall fall
 as the threshold rises, so the recall target alone fixes the best threshold:
 the largest one whose recall still meets the target.  Any lower threshold
 costs the same and only adds false hits.  The planner therefore walks the
@@ -46,9 +46,9 @@ class Plan:
 
     Attributes
     ----------
-    segment : int
+    sample_size : int
         Set bits of a stored code that each detector samples (may equal
-        ``active``, meaning all of them).
+        ``weight``, meaning all of them).
     threshold : int
         A detector fires when at least this many of its sampled bits are set
         in the query.
@@ -64,16 +64,17 @@ class Plan:
         bits is recalled.
     miss : float
         ``1 - recall``, computed directly (exact when recall rounds to 1).
-    capacity : int or float
-        Largest store whose per-query false-hit chance stays within
-        ``target_false_hit`` (``math.inf`` if beyond the float range).
+    limit : int or float
+        The model's limit: the largest store whose per-query false-hit
+        chance stays within ``target_false_hit`` (``math.inf`` if beyond the
+        float range). Compare ``target_capacity``, the count planned for.
     postings_per_code : int
-        ``detectors * segment``: index entries each stored code adds.
+        ``detectors * sample_size``: index entries each stored code adds.
     updates_per_query : float
-        Expected counter updates a query of ``active`` bits makes in a store
-        of ``target_capacity`` codes: ``active * capacity * postings / bits``.
-    bits, active, lost_bits : int
-        Code width, set bits per code, and ``ceil(noise * active)``.
+        Expected counter updates a query of ``weight`` bits makes in a store
+        of ``target_capacity`` codes: ``weight * target_capacity * postings / bits``.
+    bits, weight, lost_bits : int
+        Code width, set bits per code, and ``ceil(noise * weight)``.
     target_false_hit, target_capacity, noise, target_recall, max_detectors
         The request the plan answers.
     alternatives : tuple of Plan
@@ -81,27 +82,27 @@ class Plan:
 
     Examples
     --------
-    >>> p = plan(2048, 40, false_hit=1e-6, capacity=50_000)
-    >>> p.segment, p.threshold, p.detectors, p.postings_per_code, p.capacity
-    (7, 7, 1, 7, 1591814)
+    >>> p = plan(1536, 30, false_hit=1e-6, capacity=50_000)
+    >>> p.sample_size, p.threshold, p.detectors, p.postings_per_code, p.limit
+    (7, 7, 1, 7, 1939219)
     >>> print(str(p).splitlines()[0])
-    segment 7 of 40 set bits, threshold 7, 1 detector per code (7 postings per code)
+    sample size 7 of 30 set bits, threshold 7, 1 detector per code (7 postings per code)
     >>> len(p.alternatives), p.alternatives[0].alternatives
     (3, ())
     """
 
-    segment: int
+    sample_size: int
     threshold: int
     detectors: int
     false_hit_per_code: float
     false_hit_per_query: float
     recall: float
     miss: float
-    capacity: int | float
+    limit: int | float
     postings_per_code: int
     updates_per_query: float
     bits: int
-    active: int
+    weight: int
     lost_bits: int
     target_false_hit: float
     target_capacity: int
@@ -113,27 +114,27 @@ class Plan:
     def to_dict(self):
         """Plain-type dictionary (JSON-ready); alternatives as a list.
 
-        An unbounded ``capacity`` becomes ``None``.
+        An unbounded ``limit`` becomes ``None``.
 
         Examples
         --------
-        >>> d = plan(2048, 40, false_hit=1e-9, capacity=10**6, noise=0.25).to_dict()
+        >>> d = plan(1536, 30, false_hit=1e-9, capacity=10**6, noise=0.25).to_dict()
         >>> sorted(d)[:4]
-        ['active', 'alternatives', 'bits', 'capacity']
+        ['alternatives', 'bits', 'detectors', 'false_hit_per_code']
         """
         out = {}
         for field in dataclasses.fields(self):
             value = getattr(self, field.name)
             if field.name == "alternatives":
                 value = [alt.to_dict() for alt in value]
-            elif field.name == "capacity" and not math.isfinite(value):
+            elif field.name == "limit" and not math.isfinite(value):
                 value = None
             out[field.name] = value
         return out
 
     def __str__(self):
         lines = [
-            f"segment {self.segment} of {self.active} set bits, threshold "
+            f"sample size {self.sample_size} of {self.weight} set bits, threshold "
             f"{self.threshold}, {self.detectors} detector"
             f"{'s' if self.detectors != 1 else ''} per code "
             f"({self.postings_per_code} postings per code)",
@@ -141,13 +142,13 @@ class Plan:
             f"{self.false_hit_per_query:.3g} per query with "
             f"{self.target_capacity:,} codes (target {self.target_false_hit:g})",
             f"recall: {_recall_text(self.recall, self.miss)} with "
-            f"{self.lost_bits} of {self.active} set bits lost "
+            f"{self.lost_bits} of {self.weight} set bits lost "
             f"(target {self.target_recall:g})",
-            f"capacity at the false-hit target: {_count_text(self.capacity)} codes",
+            f"limit at the false-hit target: {_count_text(self.limit)} codes",
         ]
         if self.alternatives:
             lines.append("alternatives: " + "; ".join(
-                f"s={a.segment} t={a.threshold} D={a.detectors} "
+                f"s={a.sample_size} t={a.threshold} D={a.detectors} "
                 f"({a.postings_per_code} postings, {a.false_hit_per_query:.2g} "
                 f"per query)" for a in self.alternatives))
         return "\n".join(lines)
@@ -197,7 +198,7 @@ def _scalar_real(name, value):
 
 
 # ---------------------------------------------------------------------------
-# Fast rows of log pmf values: one row per segment size
+# Fast rows of log pmf values: one row per sample_size size
 # ---------------------------------------------------------------------------
 
 def _rows_log_pmf(N, K, segs, width):
@@ -357,14 +358,14 @@ class _Search:
         return tuple(np.concatenate(col) for col in zip(*parts))
 
 
-def _limit(costs, count):
+def _nth_cheapest(costs, count):
     """Cost of the count-th cheapest entry (inf if fewer)."""
     if len(costs) < count:
         return math.inf
     return sorted(costs)[count - 1]
 
 
-def plan(bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
+def plan(bits, weight, *, false_hit, capacity, noise=0.0, recall=0.999,
          max_detectors=8):
     """Cheapest detector configuration that meets a false-hit and a recall
     target.
@@ -373,8 +374,8 @@ def plan(bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
     ----------
     bits : int
         Code width, ``>= 1``.
-    active : int
-        Set bits per code (and per query), ``1 <= active <= bits``.
+    weight : int
+        Set bits per code (and per query), ``1 <= weight <= bits``.
     false_hit : float
         Largest allowed chance that an unrelated query returns at least one
         hit from a store of ``capacity`` codes, ``0 < false_hit < 1``.
@@ -391,7 +392,7 @@ def plan(bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
     Returns
     -------
     Plan
-        Fewest postings per code (``detectors * segment``); among equal
+        Fewest postings per code (``detectors * sample_size``); among equal
         costs the lowest false-hit chance.  Carries up to three next-best
         alternatives.
 
@@ -405,20 +406,20 @@ def plan(bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
 
     Notes
     -----
-    Work grows with the cost of the answer: rows of ``segment + 1``
-    cumulative sums for every segment up to the chosen cost, so about
-    ``cost**2`` operations, at most ``active**2`` when no plan exists.
+    Work grows with the cost of the answer: rows of ``sample_size + 1``
+    cumulative sums for every sample_size up to the chosen cost, so about
+    ``cost**2`` operations, at most ``weight**2`` when no plan exists.
 
     Examples
     --------
-    >>> p = plan(2048, 40, false_hit=1e-9, capacity=10**6, noise=0.25)
-    >>> (p.segment, p.threshold, p.detectors)
-    (21, 12, 1)
+    >>> p = plan(1536, 30, false_hit=1e-9, capacity=10**6, noise=0.25)
+    >>> (p.sample_size, p.threshold, p.detectors)
+    (20, 12, 1)
     >>> p.false_hit_per_query <= 1e-9 and p.recall >= 0.999
     True
     """
     n = _scalar_int("bits", bits)
-    a = _scalar_int("active", active)
+    a = _scalar_int("weight", weight)
     F = _scalar_real("false_hit", false_hit)
     M = _scalar_int("capacity", capacity)
     rho = _scalar_real("noise", noise)
@@ -427,9 +428,9 @@ def plan(bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
     if n < 1:
         raise ValueError(f"bits={n} must be >= 1")
     if a < 1:
-        raise ValueError(f"active={a} must be >= 1")
+        raise ValueError(f"weight={a} must be >= 1")
     if a > n:
-        raise ValueError(f"active={a} must be <= bits={n}")
+        raise ValueError(f"weight={a} must be <= bits={n}")
     if not 0 < F < 1:
         raise ValueError(f"false_hit={F!r} must be > 0 and < 1")
     if M < 1:
@@ -446,36 +447,36 @@ def plan(bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
     feasible = {}      # (s, D) -> (cost, theta)
     pending = []       # borderline pairs: (cost, s, D, theta)
     seen = []          # (log p1, s, D, theta): recall met, for PlanError
-    limit = math.inf
+    cost_bound = math.inf
     s_lo, size = 1, 16
-    while s_lo <= a and s_lo <= limit:
+    while s_lo <= a and s_lo <= cost_bound:
         s_hi = min(a, s_lo + size - 1)
-        cost, segs, dets, ths, l1, status = search.block(s_lo, s_hi, limit)
+        cost, segs, dets, ths, l1, status = search.block(s_lo, s_hi, cost_bound)
         for i in np.flatnonzero(status == 1):
             feasible[(int(segs[i]), int(dets[i]))] = (int(cost[i]), int(ths[i]))
         for i in np.flatnonzero(status == 0):
             pending.append((int(cost[i]), int(segs[i]), int(dets[i]), int(ths[i])))
         seen.append((l1, segs, dets, ths))
-        limit = _limit([c for c, _ in feasible.values()], want)
+        cost_bound = _nth_cheapest([c for c, _ in feasible.values()], want)
         s_lo, size = s_hi + 1, size * 2
 
     # Resolve borderline pairs in order of cost, while they can still matter.
     pending.sort()
     i = 0
-    while i < len(pending) and pending[i][0] <= limit:
-        batch = [p for p in pending[i:i + 16] if p[0] <= limit]
+    while i < len(pending) and pending[i][0] <= cost_bound:
+        batch = [p for p in pending[i:i + 16] if p[0] <= cost_bound]
         vals = search.exact_many([(s, th, D) for _, s, D, th in batch])
         for (cost, s, D, th), lp in zip(batch, vals):
             if search.meets_false_hit(lp):
                 feasible[(s, D)] = (cost, th)
-        limit = _limit([c for c, _ in feasible.values()], want)
+        cost_bound = _nth_cheapest([c for c, _ in feasible.values()], want)
         i += len(batch)
 
     if not feasible:
         raise PlanError(_impossible(search, seen))
 
     ranked = [(cost, s, D, th) for (s, D), (cost, th) in feasible.items()
-              if cost <= limit]
+              if cost <= cost_bound]
     lps = search.exact_many([(s, th, D) for _, s, D, th in ranked])
     order = sorted(zip(ranked, lps), key=lambda e: (e[0][0], e[1], e[0][2]))
     plans = [_make_plan(search, s, th, D, lp) for (_, s, D, th), lp in order[:want]]
@@ -484,16 +485,16 @@ def plan(bits, active, *, false_hit, capacity, noise=0.0, recall=0.999,
 
 def _make_plan(search, s, th, D, lp):
     lmiss = search.exact_log_miss(s, th, D)
-    cap = _model.capacity(lp, search.F, log=True)
+    cap = _model.code_limit(lp, search.F, log=True)
     return Plan(
-        segment=int(s), threshold=int(th), detectors=int(D),
+        sample_size=int(s), threshold=int(th), detectors=int(D),
         false_hit_per_code=math.exp(lp),
         false_hit_per_query=math.exp(float(_model._log_store_false_hit(
             lp, float(search.M)))),
         recall=-math.expm1(lmiss), miss=math.exp(lmiss),
-        capacity=cap, postings_per_code=int(s * D),
+        limit=cap, postings_per_code=int(s * D),
         updates_per_query=search.q * search.M * s * D / search.n,
-        bits=search.n, active=search.a, lost_bits=int(search.k),
+        bits=search.n, weight=search.a, lost_bits=int(search.k),
         target_false_hit=search.F, target_capacity=search.M,
         noise=search.noise, target_recall=search.R,
         max_detectors=search.max_d)
@@ -525,14 +526,14 @@ def _impossible(search, seen):
             best = min(best, (lq, lp, t))
     _, lp, (s, th, D) = best
     plan_ = _make_plan(search, s, th, D, lp)
-    if plan_.capacity >= 1:
-        tail = f"which stays within the target only up to {_count_text(plan_.capacity)} codes"
+    if plan_.limit >= 1:
+        tail = f"which stays within the target only up to {_count_text(plan_.limit)} codes"
     else:
         tail = "which exceeds the target even with a single stored code"
     return (f"false_hit={search.F:g} at capacity={search.M:,} cannot be met "
             f"together with recall={R:g} at noise={search.noise:g} "
             f"({k} of {a} set bits lost, at most {search.max_d} detectors): the "
             f"lowest reachable is {plan_.false_hit_per_query:.2g} false hits per "
-            f"query at that capacity (segment {s}, threshold {th}, {D} "
+            f"query at that capacity (sample size {s}, threshold {th}, {D} "
             f"detector{'s' if D != 1 else ''}, recall "
             f"{_recall_text(plan_.recall, plan_.miss)}), {tail}")

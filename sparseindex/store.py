@@ -1,7 +1,7 @@
 """The Store: packed codes, their detector banks, and threshold queries.
 
 A stored code is a *hit* for a query when any detector of its bank fires:
-at least ``threshold`` of the detector's ``segment`` sampled bits are set in
+at least ``threshold`` of the detector's ``sample_size`` sampled bits are set in
 the query. Hits come back with their exact full-code overlap (AND +
 popcount over the packed rows), so a caller can rank or filter them.
 
@@ -204,9 +204,9 @@ class Store:
     threshold : int
         A detector fires when at least this many of its sampled bits are set
         in the query (θ).
-    segment : int or None
+    sample_size : int or None
         Set bits each detector samples from its code (s); None samples all
-        of them. A code lighter than ``segment`` is sampled whole.
+        of them. A code lighter than ``sample_size`` is sampled whole.
     detectors : int
         Detectors per stored code (D), sampled independently.
     seed : int or None
@@ -217,7 +217,7 @@ class Store:
     Notes
     -----
     Memory per code is ``8 * ceil(bits / 64)`` bytes of packed code, ``2 *
-    detectors * segment`` bytes of postings (uint16) and 5 bytes of
+    detectors * sample_size`` bytes of postings (uint16) and 5 bytes of
     bookkeeping (13 once a compaction has dropped removed codes). A
     query costs one counter update per posting of its set bits (about
     ``q * N * D * s / bits``) plus one AND + popcount per hit.
@@ -241,8 +241,8 @@ class Store:
 
     Parameters, counts and memory are read-only properties:
 
-    >>> s = Store(64, threshold=2, segment=3, detectors=2, seed=5); _ = s.add([[1, 2, 3, 4]])
-    >>> s.bits, s.threshold, s.segment, s.detectors, s.seed, s.plan, s.read_only
+    >>> s = Store(64, threshold=2, sample_size=3, detectors=2, seed=5); _ = s.add([[1, 2, 3, 4]])
+    >>> s.bits, s.threshold, s.sample_size, s.detectors, s.seed, s.plan, s.read_only
     (64, 2, 3, 2, 5, None, False)
     >>> s.next_id, s.removed_count, s.postings_count, s.nbytes > 0
     (1, 0, 6, True)
@@ -251,13 +251,13 @@ class Store:
     #: Detectors per postings block; tests lower it to exercise many blocks.
     _block_span = BLOCK_SPAN
 
-    def __init__(self, bits, *, threshold, segment=None, detectors=1, seed=None):
+    def __init__(self, bits, *, threshold, sample_size=None, detectors=1, seed=None):
         bits = _check_int("bits", bits, 1)
         threshold = _check_int("threshold", threshold, 1)
-        if segment is not None:
-            segment = _check_int("segment", segment, 1)
-            if threshold > segment:
-                raise ValueError(f"threshold={threshold} must be <= segment={segment}")
+        if sample_size is not None:
+            sample_size = _check_int("sample_size", sample_size, 1)
+            if threshold > sample_size:
+                raise ValueError(f"threshold={threshold} must be <= sample_size={sample_size}")
         if threshold > bits:
             raise ValueError(f"threshold={threshold} must be <= bits={bits}: no code could ever be recalled")
         detectors = _check_int("detectors", detectors, 1)
@@ -269,10 +269,10 @@ class Store:
                 raise ValueError(f"seed={seed} must be < 2**64")
         self._bits = bits
         self._threshold = threshold
-        self._segment = segment
+        self._sample_size = sample_size
         self._detectors = detectors
         self._seed = seed
-        self._bank = DetectorBank(bits, threshold, segment, detectors, seed, self._block_span)
+        self._bank = DetectorBank(bits, threshold, sample_size, detectors, seed, self._block_span)
         n_words = (bits + 63) // 64
         self._words = np.zeros((0, n_words), dtype=np.uint64)
         self._weights = np.zeros(0, dtype=np.int32)
@@ -294,19 +294,19 @@ class Store:
         self._served = {"queries": 0, "hits": 0, "added": 0, "removed": 0}
         self._served_lock = threading.Lock()
         self._mutations = 0
-        self._probe = None
+        self._measurement = None
         self._watch = None  # a health._Watch once watch() or for_target set one
 
     @classmethod
     def for_target(
-        cls, bits, active, *, false_hit, capacity, noise=0.0, recall=0.999, max_detectors=8, seed=None,
+        cls, bits, weight, *, false_hit, capacity, noise=0.0, recall=0.999, max_detectors=8, seed=None,
         warn_fraction=0.8, on_status=None,
     ) -> "Store":
         """A store configured by :func:`sparseindex.plan` from targets.
 
         The plan (``store.plan``) keeps the targets so that reports can
-        measure against them. Codes whose weight differs from ``active`` are
-        still accepted; a detector samples ``min(segment, weight)`` bits.
+        measure against them. Codes of a weight other than ``weight`` are
+        still accepted; a detector samples ``min(sample_size, weight)`` bits.
         ``warn_fraction`` and ``on_status`` are passed to :meth:`watch`.
 
         Raises
@@ -317,17 +317,17 @@ class Store:
 
         Examples
         --------
-        >>> s = Store.for_target(2048, 40, false_hit=1e-6, capacity=100_000, noise=0.2, seed=1)
+        >>> s = Store.for_target(1536, 30, false_hit=1e-6, capacity=100_000, noise=0.2, seed=1)
         >>> s.plan.false_hit_per_query <= 1e-6 and s.plan.recall >= 0.999
         True
         """
         from .planner import plan as make_plan
 
         chosen = make_plan(
-            bits, active, false_hit=false_hit, capacity=capacity, noise=noise, recall=recall,
+            bits, weight, false_hit=false_hit, capacity=capacity, noise=noise, recall=recall,
             max_detectors=max_detectors,
         )
-        store = cls(bits, threshold=chosen.threshold, segment=chosen.segment, detectors=chosen.detectors, seed=seed)
+        store = cls(bits, threshold=chosen.threshold, sample_size=chosen.sample_size, detectors=chosen.detectors, seed=seed)
         store._plan = chosen
         store.watch(on_status, warn_fraction=warn_fraction)
         return store
@@ -341,7 +341,7 @@ class Store:
 
     bits = property(lambda self: self._bits, doc="Width of every code.")
     threshold = property(lambda self: self._threshold, doc="Sampled bits a detector needs to fire.")
-    segment = property(lambda self: self._segment, doc="Set bits each detector samples (None: all).")
+    sample_size = property(lambda self: self._sample_size, doc="Set bits each detector samples (None: all).")
     detectors = property(lambda self: self._detectors, doc="Detectors per stored code.")
     seed = property(lambda self: self._seed, doc="Seed of the detector sampling.")
 
@@ -362,7 +362,7 @@ class Store:
 
     @property
     def nbytes(self) -> int:
-        """Bytes held by codes, postings and bookkeeping (capacity included).
+        """Bytes held by codes, postings and bookkeeping (spare room included).
 
         For a memory-mapped store this counts the mapped file's arrays too,
         although the operating system pages them in and out as needed.
@@ -398,7 +398,7 @@ class Store:
 
     def _repr(self) -> str:
         return (
-            f"Store(bits={self._bits}, threshold={self._threshold}, segment={self._segment}, "
+            f"Store(bits={self._bits}, threshold={self._threshold}, sample_size={self._sample_size}, "
             f"detectors={self._detectors}, items={len(self)}, removed={self._removed_count}, "
             f"seed={self._seed})"
         )
@@ -548,7 +548,7 @@ class Store:
 
     def _add(self, batch: Codes, weights: np.ndarray, m: int, given=None) -> np.ndarray:
         # Prepare everything where no query looks (new buffers, or the
-        # unused capacity past ``_rows``), then commit under the write lock.
+        # unused room past ``_rows``), then commit under the write lock.
         ids = np.arange(self._next_id, self._next_id + m, dtype=np.int64)
         need = self._rows + m
         words, wts, removed, row_ids = self._words, self._weights, self._removed, self._row_ids
@@ -567,12 +567,12 @@ class Store:
                 row_ids = np.zeros(m, dtype=np.int64)
         elif need > words.shape[0]:
             # room for the rows first: a MemoryError here changes nothing
-            capacity = max(need, int(words.shape[0] * 1.5))
-            words = _grown(words, capacity, self._rows)
-            wts = _grown(wts, capacity, self._rows)
-            removed = _grown(removed, capacity, self._rows)
+            room = max(need, int(words.shape[0] * 1.5))
+            words = _grown(words, room, self._rows)
+            wts = _grown(wts, room, self._rows)
+            removed = _grown(removed, room, self._rows)
             if row_ids is not None:
-                row_ids = _grown(row_ids, capacity, self._rows)
+                row_ids = _grown(row_ids, room, self._rows)
         elif row_ids is not None and need > row_ids.shape[0]:
             row_ids = _grown(row_ids, words.shape[0], self._rows)
         pending = self._bank.prepare_append(batch._words, ids)
@@ -603,7 +603,7 @@ class Store:
         and ``is_new`` is False; otherwise it is added. Returns ``(ids,
         is_new)``. Exact: candidates come from the detector index where its
         threshold guarantees them (a stored code of weight ``w`` is sure to
-        fire when ``min_overlap >= threshold + w - min(segment, w)``) and
+        fire when ``min_overlap >= threshold + w - min(sample_size, w)``) and
         from a scan of the other stored codes; every match is verified on
         the packed codes, within the batch too. The whole call is one
         mutation: no other change interleaves, and queries see all of its
@@ -674,12 +674,12 @@ class Store:
 
         Unlike :meth:`query_many` (which returns what the detectors find),
         this is complete: rows the detectors are not sure to find (``weight
-        > min_overlap - threshold + min(segment, weight)``) are scanned as
+        > min_overlap - threshold + min(sample_size, weight)``) are scanned as
         well, and every match is verified. Ordered as :class:`Hits`.
 
         Examples
         --------
-        >>> s = Store(bits=64, threshold=2, segment=2, seed=0)
+        >>> s = Store(bits=64, threshold=2, sample_size=2, seed=0)
         >>> _ = s.add([[1, 2, 3, 4, 5, 6]])
         >>> s.find_matches([[1, 2, 3, 40]], min_overlap=3)[0].ids.tolist()
         [0]
@@ -697,7 +697,7 @@ class Store:
             n = self._rows
             if n == 0:
                 return hits
-            sample = self._weights[:n] if self._segment is None else np.minimum(self._weights[:n], self._segment)
+            sample = self._weights[:n] if self._sample_size is None else np.minimum(self._weights[:n], self._sample_size)
             # the detectors are sure to fire for rows with m >= threshold + weight - sample
             unsure = np.flatnonzero(
                 ~self._removed[:n]
@@ -806,12 +806,12 @@ class Store:
     def detector_bits(self, code_id) -> np.ndarray:
         """The bits each detector of a stored code sampled, shape (detectors, sample).
 
-        Rows are sorted; ``sample = min(segment, weight)``. Recomputed from
+        Rows are sorted; ``sample = min(sample_size, weight)``. Recomputed from
         the seed and the id, exactly as at ``add``.
 
         Examples
         --------
-        >>> s = Store(bits=32, threshold=2, segment=3, detectors=2, seed=7)
+        >>> s = Store(bits=32, threshold=2, sample_size=3, detectors=2, seed=7)
         >>> _ = s.add([[1, 4, 9, 16, 25]])
         >>> s.detector_bits(0).shape
         (2, 3)
@@ -957,10 +957,10 @@ class Store:
 
         Examples
         --------
-        >>> s = Store.for_target(2048, 40, false_hit=1e-6, capacity=50_000, seed=1)
-        >>> _ = s.add(Codes.random(1_000, 2048, 40, seed=2))
+        >>> s = Store.for_target(1536, 30, false_hit=1e-6, capacity=50_000, seed=1)
+        >>> _ = s.add(Codes.random(1_000, 1536, 30, seed=2))
         >>> h = s.health()
-        >>> h.status, h.items, h.capacity >= 50_000
+        >>> h.status, h.items, h.limit >= 50_000
         ('healthy', 1000, True)
         """
         from . import health
@@ -971,38 +971,38 @@ class Store:
             warn_fraction = _check_fraction(warn_fraction)
         return health.compute(self, false_hit=false_hit, warn_fraction=warn_fraction, refresh=bool(refresh))
 
-    def probe(self, queries=10_000, *, source="uniform", seed=None):
+    def measure_false_hits(self, queries=10_000, *, source="uniform", seed=None):
         """Run random unrelated queries and measure the false-hit rate.
 
         ``source="uniform"``: queries of the nominal weight (the plan's
-        ``active``, else the mean stored weight) with uniformly random bits;
+        ``weight``, else the mean stored weight) with uniformly random bits;
         ``"usage"``: drawn from the store's measured bit usage (the
         usage-aware model's conditional Poisson queries). Every hit is false
-        by construction. Returns a :class:`~sparseindex.health.ProbeResult`
+        by construction. Returns a :class:`~sparseindex.health.FalseHitMeasurement`
         with the Clopper–Pearson 95% interval beside the model's prediction;
-        :meth:`health` shows the latest one. Probe queries do not count as
+        :meth:`health` shows the latest one. Measurement queries do not count as
         served queries.
 
         Examples
         --------
         >>> s = Store(256, threshold=3, seed=1); _ = s.add(Codes.random(2_000, 256, 8, seed=1))
-        >>> r = s.probe(2_000, seed=3)
+        >>> r = s.measure_false_hits(2_000, seed=3)
         >>> r.queries, 0 < r.rate < 1, r.low <= r.rate <= r.high
         (2000, True, True)
         """
         from . import health
 
-        return health.run_probe(self, queries, source=source, seed=seed)
+        return health.measure_false_hits(self, queries, source=source, seed=seed)
 
     def watch(self, on_status=None, *, warn_fraction=0.8, false_hit=None) -> None:
         """Alert on status changes: ``on_status(previous, current, health)``.
 
         The callback runs once each time an ``add`` or ``remove`` moves the
         status between ``"healthy"``, ``"filling"`` (``warn_fraction`` of
-        capacity reached) and ``"saturated"`` (past capacity), in the thread
+        limit reached) and ``"saturated"`` (past the limit), in the thread
         that made the change, after the change is committed; an exception it
-        raises becomes a ``RuntimeWarning``. Crossing capacity also issues a
-        :class:`~sparseindex.CapacityWarning`. ``false_hit`` sets the target
+        raises becomes a ``RuntimeWarning``. Crossing the limit also issues a
+        :class:`~sparseindex.SaturationWarning`. ``false_hit`` sets the target
         for a store without a plan.
 
         Examples
@@ -1114,7 +1114,7 @@ class Store:
         n = self._rows
         post, block_indptr, block_lo, block_hi = self._bank.arrays()
         return _persist.StoreState(
-            bits=self._bits, threshold=self._threshold, segment=self._segment, detectors=self._detectors,
+            bits=self._bits, threshold=self._threshold, sample_size=self._sample_size, detectors=self._detectors,
             seed=self._seed, block_span=self._bank.block_span,
             plan=None if self._plan is None else self._plan.to_dict(),
             rows=n, next_id=self._next_id, removed_count=self._removed_count,
@@ -1125,10 +1125,10 @@ class Store:
 
     @classmethod
     def _from_state(cls, state: "_persist.StoreState") -> "Store":
-        store = cls(state.bits, threshold=state.threshold, segment=state.segment, detectors=state.detectors,
+        store = cls(state.bits, threshold=state.threshold, sample_size=state.sample_size, detectors=state.detectors,
                     seed=state.seed)
         store._bank = DetectorBank.from_arrays(
-            state.bits, state.threshold, state.segment, state.detectors, state.seed, state.block_span,
+            state.bits, state.threshold, state.sample_size, state.detectors, state.seed, state.block_span,
             rows=state.rows, postings=state.postings, block_indptr=state.block_indptr,
             block_lo=state.block_lo, block_hi=state.block_hi, max_sample=state.max_sample,
             max_weight=int(state.weights.max()) if state.weights.shape[0] else 0,
@@ -1139,7 +1139,7 @@ class Store:
         store._plan = state.plan
         store._usage = None  # counted on first use (health), not at load
         if state.plan is not None:
-            # a planned store warns past capacity, as for_target's does; the
+            # a planned store warns past the limit, as for_target's does; the
             # level is first taken at the first change (not at load: O(N))
             from .health import _Watch
 
@@ -1202,7 +1202,7 @@ def _matches_within(batch: Codes, m: int) -> BatchHits:
     n = len(batch)
     if usable.size == 0:
         return BatchHits(np.zeros(n + 1, np.int64), np.zeros(0, np.int64), np.zeros(0, np.int64))
-    scratch = Store(batch.bits, threshold=m, segment=None, detectors=1, seed=0)
+    scratch = Store(batch.bits, threshold=m, sample_size=None, detectors=1, seed=0)
     sub = Codes._wrap(np.ascontiguousarray(batch._words[usable]), batch.bits)
     scratch.add(sub)
     hits = scratch._query_batch(batch, m)
@@ -1213,7 +1213,7 @@ def _restore_pickled(data: bytes) -> Store:
     return Store._from_state(_persist.read_bytes(data))
 
 
-def _grown(array: np.ndarray, capacity: int, used: int) -> np.ndarray:
-    out = np.zeros((capacity,) + array.shape[1:], dtype=array.dtype)
+def _grown(array: np.ndarray, room: int, used: int) -> np.ndarray:
+    out = np.zeros((room,) + array.shape[1:], dtype=array.dtype)
     out[:used] = array[:used]
     return out

@@ -18,7 +18,7 @@ class NaiveStore:
 
     A code with id ``i`` is a hit for query ``q`` when some detector sample
     ``S`` of it has ``len(S & q) >= threshold``; with no samples given
-    (``segment=None``, one detector) the sample is the whole code.
+    (``sample_size=None``, one detector) the sample is the whole code.
     """
 
     def __init__(self, threshold: int):

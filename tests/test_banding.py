@@ -121,7 +121,7 @@ def test_choose_bands_none_when_out_of_reach():
 
 def test_similarity_moments_equal_direct_means_over_all_pairs():
     # reference: exact overlaps from a scipy.sparse product, every pair
-    codes = Codes.random(60, bits=128, active=12, seed=3)
+    codes = Codes.random(60, bits=128, weight=12, seed=3)
     x = codes.to_scipy().astype(np.int64)
     ov = (x @ x.T).toarray()
     lo, hi = np.triu_indices(60, 1)
@@ -132,7 +132,7 @@ def test_similarity_moments_equal_direct_means_over_all_pairs():
 
 
 def test_similarity_moments_sample_is_seeded_and_close():
-    codes = Codes.random(3000, bits=256, active=20, seed=4)
+    codes = Codes.random(3000, bits=256, weight=20, seed=4)
     a = _banding.similarity_moments(codes.words, codes.weights, max_rows=2, samples=50_000, seed=1)
     b = _banding.similarity_moments(codes.words, codes.weights, max_rows=2, samples=50_000, seed=1)
     full = _banding.similarity_moments(codes.words, codes.weights, max_rows=2, samples=10**7)
@@ -142,7 +142,7 @@ def test_similarity_moments_sample_is_seeded_and_close():
 
 def test_index_seconds_counts_pairs_per_bit():
     # reference: column sums of the dense matrix (numpy)
-    codes = Codes.random(500, bits=200, active=15, seed=5)
+    codes = Codes.random(500, bits=200, weight=15, seed=5)
     usage = codes.to_dense().sum(axis=0)
     assert np.array_equal(_banding.bit_usage(codes.words, 200), usage)
     c = _banding.COST
@@ -224,7 +224,7 @@ def test_every_candidate_returned_is_exact(seed, n, m, bands, rows):
 
 @given(st.integers(0, 2**32), st.permutations(range(12)))
 def test_band_keys_depend_on_the_code_not_its_position(seed, perm):
-    codes = Codes.random(12, bits=300, active=10, seed=seed % 1000)
+    codes = Codes.random(12, bits=300, weight=10, seed=seed % 1000)
     keys = _banding.band_keys(codes.words, codes.weights, bands=5, rows=2, seed=seed)
     shuffled = codes[np.array(perm)]
     keys2 = _banding.band_keys(shuffled.words, shuffled.weights, bands=5, rows=2, seed=seed)

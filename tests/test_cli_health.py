@@ -35,18 +35,18 @@ def test_json_and_openmetrics(saved, capsys):
     path, store = saved
     code, out, _ = run(["health", str(path), "--json"], capsys)
     report = json.loads(out)
-    assert code == 0 and report["items"] == 3_000 and report["capacity"] == store.health().capacity
-    code, out, _ = run(["health", str(path), "--openmetrics", "--probe", "500", "--seed", "1"], capsys)
-    assert code == 0 and out.endswith("# EOF\n") and "sparseindex_probe_queries" in out
+    assert code == 0 and report["items"] == 3_000 and report["limit"] == store.health().limit
+    code, out, _ = run(["health", str(path), "--openmetrics", "--measure", "500", "--seed", "1"], capsys)
+    assert code == 0 and out.endswith("# EOF\n") and "sparseindex_measured_queries" in out
 
 
 def test_probe_and_plot(saved, capsys, tmp_path):
     pytest.importorskip("matplotlib")
     path, _ = saved
     png = tmp_path / "headroom.png"
-    code, out, err = run(["health", str(path), "--probe", "2000", "--source", "usage", "--seed", "2",
+    code, out, err = run(["health", str(path), "--measure", "2000", "--source", "usage", "--seed", "2",
                           "--plot", str(png)], capsys)
-    assert code == 0 and "probe of 2,000 usage queries" in out
+    assert code == 0 and "measurement of 2,000 usage queries" in out
     assert f"plot written to {png}" in err
     assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
@@ -56,7 +56,7 @@ def test_probe_and_plot(saved, capsys, tmp_path):
     [
         (["health", "/nonexistent/store.sidx"], "no such file: '/nonexistent/store.sidx'"),
         (["health", "{bad}"], "section 'preamble'"),
-        (["health", "{good}", "--probe", "-5"], "--probe -5 must be >= 0"),
+        (["health", "{good}", "--measure", "-5"], "--measure -5 must be >= 0"),
         (["health", "{good}", "--false-hit", "2"], "false_hit=2.0 must be a chance"),
         (["health", "{good}", "--warn-fraction", "0"], "warn_fraction=0.0"),
     ],

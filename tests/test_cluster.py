@@ -18,12 +18,12 @@ import warnings
 import numpy as np
 import pytest
 
-from sparseindex import CapacityWarning, Codes, ReadOnlyStoreError, Store, StoreFormatError
+from sparseindex import SaturationWarning, Codes, ReadOnlyStoreError, Store, StoreFormatError
 from sparseindex import cluster as cl
 from tests.naive import noisy_copy
 
-BITS, ACTIVE = 256, 16
-PARAMS = dict(threshold=6, segment=10, detectors=2)  # segment < weight: find_matches must scan too
+BITS, WEIGHT = 256, 16
+PARAMS = dict(threshold=6, sample_size=10, detectors=2)  # sample_size < weight: find_matches must scan too
 
 
 def _new_cluster(workers=2):
@@ -85,7 +85,7 @@ def planted(rng, source: Codes, count):
     """Near-copies (1-3 bits changed) of random codes of ``source``, plus as many fresh codes."""
     rows = [noisy_copy(rng, source[int(i)].tolist(), BITS, int(rng.integers(1, 4)))
             for i in rng.integers(0, len(source), count)]
-    fresh = Codes.random(count, BITS, ACTIVE, seed=int(rng.integers(1 << 30)))
+    fresh = Codes.random(count, BITS, WEIGHT, seed=int(rng.integers(1 << 30)))
     return Codes.concat([Codes.from_indices(rows, bits=BITS), fresh])
 
 
@@ -122,7 +122,7 @@ def test_share_targets_plan_the_same_configuration():
         whole = plan(2048, 40, false_hit=1e-9, capacity=2_000_000, noise=0.25)
         cap, fh = cl.share_targets(1e-9, 2_000_000, shards)
         part = plan(2048, 40, false_hit=fh, capacity=cap, noise=0.25)
-        assert (part.segment, part.threshold, part.detectors) == (whole.segment, whole.threshold, whole.detectors)
+        assert (part.sample_size, part.threshold, part.detectors) == (whole.sample_size, whole.threshold, whole.detectors)
         # the whole store's chance of no false hit is the product of the shares' (1 - fh) ** (C / cap)
         assert (1 - fh) ** (2_000_000 / cap) == pytest.approx(1 - 1e-9, rel=1e-15)
 
@@ -130,7 +130,7 @@ def test_share_targets_plan_the_same_configuration():
 def test_greedy_rule_matches_store_find_or_add():
     # reference: Store.find_or_add on one store; _greedy is fed the same stored and in-batch matches
     rng = np.random.default_rng(4)
-    base = Codes.random(300, BITS, ACTIVE, seed=5)
+    base = Codes.random(300, BITS, WEIGHT, seed=5)
     ref = Store(BITS, seed=9, **PARAMS)
     ref.add(base)
     batch = planted(rng, base, 80)
@@ -150,9 +150,9 @@ def test_every_operation_matches_a_single_store(client, shards):
     ref = Store(BITS, seed=11, **PARAMS)
     with cl.ShardedStore(client, shards, BITS, seed=11, **PARAMS) as s:
         assert s.seed == ref.seed == 11
-        first = Codes.random(1500, BITS, ACTIVE, seed=1)
+        first = Codes.random(1500, BITS, WEIGHT, seed=1)
         assert np.array_equal(s.add(first), ref.add(first))                     # reference: single Store
-        gap = Codes.random(40, BITS, ACTIVE, seed=2)
+        gap = Codes.random(40, BITS, WEIGHT, seed=2)
         given = np.arange(2000, 2080, 2)
         assert np.array_equal(s.add(gap, ids=given), ref.add(gap, ids=given))   # ids with gaps
         workers = {p["worker"] for p in s.placement()}
@@ -175,7 +175,7 @@ def test_every_operation_matches_a_single_store(client, shards):
         s.compact()
         ref.compact()
         assert_same_answers(ref, s, queries)
-        more = Codes.random(300, BITS, ACTIVE, seed=3)
+        more = Codes.random(300, BITS, WEIGHT, seed=3)
         assert np.array_equal(s.add(more), ref.add(more))
         assert_same_answers(ref, s, queries)
 
@@ -190,7 +190,7 @@ def test_every_operation_matches_a_single_store(client, shards):
 def test_errors_match_a_single_store(client):
     ref = Store(BITS, seed=3, **PARAMS)
     with cl.ShardedStore(client, 2, BITS, seed=3, **PARAMS) as s:
-        codes = Codes.random(20, BITS, ACTIVE, seed=1)
+        codes = Codes.random(20, BITS, WEIGHT, seed=1)
         s.add(codes)
         ref.add(codes)
         s.remove([4])
@@ -224,26 +224,26 @@ def test_errors_match_a_single_store(client):
             cl.ShardedStore("local", 2, BITS, threshold=3)
         with pytest.raises(ValueError, match="'tcp://127.0.0.1:1'"):
             cl.ShardedStore(client, 2, BITS, threshold=3, workers=["tcp://127.0.0.1:1"])
-        with pytest.raises(ValueError, match="threshold=9 must be <= segment=4"):
-            cl.ShardedStore(client, 2, BITS, threshold=9, segment=4)
+        with pytest.raises(ValueError, match="threshold=9 must be <= sample_size=4"):
+            cl.ShardedStore(client, 2, BITS, threshold=9, sample_size=4)
 
 
 def test_health_probe_and_alerts_match_a_single_store(client):
     seen_ref, seen = [], []
-    targets = dict(false_hit=0.1, capacity=1500, noise=0.2)  # a rate a probe can measure
-    ref = Store.for_target(BITS, ACTIVE, seed=21, on_status=lambda a, b, h: seen_ref.append((a, b)), **targets)
-    s = cl.ShardedStore.for_target(client, 2, BITS, ACTIVE, seed=21,
+    targets = dict(false_hit=0.1, capacity=1500, noise=0.2)  # a rate a measurement can measure
+    ref = Store.for_target(BITS, WEIGHT, seed=21, on_status=lambda a, b, h: seen_ref.append((a, b)), **targets)
+    s = cl.ShardedStore.for_target(client, 2, BITS, WEIGHT, seed=21,
                                    on_status=lambda a, b, h: seen.append((a, b)), **targets)
     with s:
         assert s.plan == ref.plan                                               # reference: single Store's plan
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             for k in range(6):  # 2,400 codes: past the planned capacity (1,958)
-                batch = Codes.random(400, BITS, ACTIVE, seed=100 + k)
+                batch = Codes.random(400, BITS, WEIGHT, seed=100 + k)
                 s.add(batch)
                 ref.add(batch)
         assert seen == seen_ref and seen_ref[-1][1] == "saturated"              # reference: single Store's alerts
-        assert any(issubclass(w.category, CapacityWarning) and "sharded" in str(w.message) for w in caught)
+        assert any(issubclass(w.category, SaturationWarning) and "sharded" in str(w.message) for w in caught)
         s.remove(np.arange(0, 300))
         ref.remove(np.arange(0, 300))
         for refresh in (False, True):
@@ -252,9 +252,9 @@ def test_health_probe_and_alerts_match_a_single_store(client):
                 h.pop(key), r.pop(key)
             assert h == r                                                       # reference: single Store.health
         for source in ("uniform", "usage"):
-            p, q = s.probe(1500, source=source, seed=5).to_dict(), ref.probe(1500, source=source, seed=5).to_dict()
+            p, q = s.measure_false_hits(1500, source=source, seed=5).to_dict(), ref.measure_false_hits(1500, source=source, seed=5).to_dict()
             p.pop("seconds"), q.pop("seconds")
-            assert p == q and p["queries_hit"] > 0                              # reference: single Store.probe
+            assert p == q and p["queries_hit"] > 0                              # reference: single Store.measure_false_hits
         shares = s.shard_health()
         cap, fh = cl.share_targets(0.1, 1500, 2)
         assert [x.target_false_hit for x in shares] == [fh, fh] and [x.target_capacity for x in shares] == [cap, cap]
@@ -265,7 +265,7 @@ def test_health_probe_and_alerts_match_a_single_store(client):
 def test_save_load_and_generations(client, tmp_path):
     rng = np.random.default_rng(8)
     ref = Store(BITS, seed=5, **PARAMS)
-    base = Codes.random(1200, BITS, ACTIVE, seed=1)
+    base = Codes.random(1200, BITS, WEIGHT, seed=1)
     queries = planted(rng, base, 40)
     with cl.ShardedStore(client, 2, BITS, seed=5, **PARAMS) as s:
         s.add(base)
@@ -274,18 +274,18 @@ def test_save_load_and_generations(client, tmp_path):
         ref.remove([3, 8])
         s.save(tmp_path / "fleet")
         first = sorted(os.listdir(tmp_path / "fleet"))
-        assert first == ["manifest.json", "shard-0000-of-0002.g000001.sidx", "shard-0001-of-0002.g000001.sidx"]
+        assert first == ["manifest.json", "shard0000.total0002.gen000001.sidx", "shard0001.total0002.gen000001.sidx"]
         s.add(base[:10])
         ref.add(base[:10])
         s.save(tmp_path / "fleet")
         second = sorted(os.listdir(tmp_path / "fleet"))
-        assert second == ["manifest.json", "shard-0000-of-0002.g000002.sidx", "shard-0001-of-0002.g000002.sidx"]
+        assert second == ["manifest.json", "shard0000.total0002.gen000002.sidx", "shard0001.total0002.gen000002.sidx"]
         # each shard file is an ordinary store file holding its part (reference: Store.load)
-        part = Store.load(tmp_path / "fleet" / "shard-0001-of-0002.g000002.sidx")
+        part = Store.load(tmp_path / "fleet" / "shard0001.total0002.gen000002.sidx")
         assert np.array_equal(part.ids(), ref.ids()[ref.ids() % 2 == 1])
     with cl.ShardedStore.load(client, tmp_path / "fleet") as back:
         assert_same_answers(ref, back, queries)                                 # reference: single Store
-        more = Codes.random(50, BITS, ACTIVE, seed=9)
+        more = Codes.random(50, BITS, WEIGHT, seed=9)
         assert np.array_equal(back.add(more), ref.add(more))
         assert_same_answers(ref, back, queries)
     with cl.ShardedStore.load(client, tmp_path / "fleet", mmap=True) as served:
@@ -296,10 +296,10 @@ def test_save_load_and_generations(client, tmp_path):
 
 def test_bad_manifests_are_refused(client, tmp_path):
     with cl.ShardedStore(client, 2, BITS, seed=5, **PARAMS) as s:
-        s.add(Codes.random(100, BITS, ACTIVE, seed=1))
+        s.add(Codes.random(100, BITS, WEIGHT, seed=1))
         s.save(tmp_path / "a")
     with cl.ShardedStore(client, 2, BITS, seed=6, **PARAMS) as other:
-        other.add(Codes.random(100, BITS, ACTIVE, seed=1))
+        other.add(Codes.random(100, BITS, WEIGHT, seed=1))
         other.save(tmp_path / "b")
     good = json.loads((tmp_path / "a" / "manifest.json").read_text())
 
@@ -320,7 +320,7 @@ def test_bad_manifests_are_refused(client, tmp_path):
             "shard 1: holds 50 codes up to next_id 100, the manifest says 49 up to 97")
     (tmp_path / "a" / "manifest.json").write_text(json.dumps(good))
     # another store's shard file under this name: its seed gives it away
-    os.replace(tmp_path / "b" / "shard-0001-of-0002.g000001.sidx", tmp_path / "a" / "shard-0001-of-0002.g000001.sidx")
+    os.replace(tmp_path / "b" / "shard0001.total0002.gen000001.sidx", tmp_path / "a" / "shard0001.total0002.gen000001.sidx")
     with pytest.raises(StoreFormatError, match="shard 1: seed=6 in the shard file, 5 in the manifest"):
         cl.ShardedStore.load(client, tmp_path / "a")
     (tmp_path / "a" / "manifest.json").write_text("{not json")
@@ -332,9 +332,9 @@ def test_bad_manifests_are_refused(client, tmp_path):
 
 def test_queries_see_a_change_entirely_or_not_at_all(client):
     ref = Store(BITS, seed=2, **PARAMS)
-    base = Codes.random(2000, BITS, ACTIVE, seed=1)
+    base = Codes.random(2000, BITS, WEIGHT, seed=1)
     queries = planted(np.random.default_rng(3), base, 30)
-    extra = Codes.from_indices([np.sort(np.concatenate([q[:12], [250, 251, 252, 253]]))[:ACTIVE]
+    extra = Codes.from_indices([np.sort(np.concatenate([q[:12], [250, 251, 252, 253]]))[:WEIGHT]
                                 for q in queries.to_indices()], bits=BITS)
     with cl.ShardedStore(client, 2, BITS, seed=2, **PARAMS) as s:
         s.add(base)
@@ -393,7 +393,7 @@ def test_killed_worker_is_named_and_recovered_from_the_last_save(tmp_path):
     try:
         rng = np.random.default_rng(6)
         ref = Store(BITS, seed=4, **PARAMS)
-        base = Codes.random(3000, BITS, ACTIVE, seed=1)
+        base = Codes.random(3000, BITS, WEIGHT, seed=1)
         queries = planted(rng, base, 80)
         s = cl.ShardedStore(client, 2, BITS, seed=4, **PARAMS)
         s.add(base)

@@ -18,7 +18,7 @@ import numpy as np
 from sparseindex import Codes, Store
 
 BITS, WEIGHT, BATCH, POOL = 256, 12, 40, 4000
-PARAMS = dict(threshold=3, segment=6, detectors=2, seed=21)
+PARAMS = dict(threshold=3, sample_size=6, detectors=2, seed=21)
 
 
 def test_queries_see_only_committed_states(tmp_path, seconds=3.0):

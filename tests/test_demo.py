@@ -4,7 +4,7 @@ Outside references, named beside each check: scipy.stats.hypergeom for the
 planned recall and the false-hit chance per code (recomputed from the plan
 the demo prints, not taken from the library's model), scipy.stats.poisson
 and scipy.stats.binom for the 3-sigma ranges of counts, and the planted
-truth of the generated data for the dedupe figures.
+truth of the generated data for the near-duplicate figures.
 """
 
 import math
@@ -18,7 +18,7 @@ from sparseindex.cli import main
 
 SIZE = 5_000
 SEED = 1
-BITS, ACTIVE = 2048, 40
+BITS, WEIGHT = 2048, 40
 TAIL = (1 - 0.9973) / 2  # one tail of +/- 3 sigma
 
 
@@ -47,21 +47,21 @@ def grab(pattern, text, count=None):
 
 
 def plan_of(out):
-    s, t, d = map(int, grab(r"plan:\s+segment (\d+), threshold (\d+), detectors (\d+)", out, 1)[0])
+    s, t, d = map(int, grab(r"plan:\s+sample size (\d+), threshold (\d+), detectors (\d+)", out, 1)[0])
     return s, t, d
 
 
 def scipy_recall(s, t, d, lost):
     """Recall of a query lacking ``lost`` of the code's bits: 1 - P[Hyp(a, a - lost, s) < t]^d (scipy)."""
-    miss1 = stats.hypergeom.cdf(t - 1, ACTIVE, ACTIVE - lost, s)
+    miss1 = stats.hypergeom.cdf(t - 1, WEIGHT, WEIGHT - lost, s)
     return 1.0 - miss1**d
 
 
 def scipy_per_code(s, t, d, q):
     """Chance an unrelated query of q bits hits one stored code: the mixture over the overlap (scipy)."""
-    z = np.arange(0, min(ACTIVE, q) + 1)
-    pz = stats.hypergeom.pmf(z, BITS, ACTIVE, q)
-    fire = stats.hypergeom.sf(t - 1, ACTIVE, z, s)
+    z = np.arange(0, min(WEIGHT, q) + 1)
+    pz = stats.hypergeom.pmf(z, BITS, WEIGHT, q)
+    fire = stats.hypergeom.sf(t - 1, WEIGHT, z, s)
     return float(np.sum(pz * (1.0 - (1.0 - fire) ** d)))
 
 
@@ -87,10 +87,10 @@ def test_plan_matches_scipy(demo):
     recall = number(grab(r"model:\s+recall ([\d.]+) at the planned noise", out, 1)[0])
     assert recall == pytest.approx(scipy_recall(s, t, d, 10), abs=1e-5)  # printed with 5 decimals
     assert recall >= 0.999
-    capacity = number(grab(r"capacity ([\d,]+) bolts at the target", out, 1)[0])
-    p = scipy_per_code(s, t, d, ACTIVE)
+    limit = number(grab(r"limit ([\d,]+) bolts at the target", out, 1)[0])
+    p = scipy_per_code(s, t, d, WEIGHT)
     # largest M with 1 - (1 - p)^M <= 1e-3 (the demo's target)
-    assert abs(capacity - math.log1p(-1e-3) / math.log1p(-p)) <= 1.0
+    assert abs(limit - math.log1p(-1e-3) / math.log1p(-p)) <= 1.0
 
 
 def test_recall_at_least_planned_minus_3_sigma(demo):
@@ -111,7 +111,7 @@ def test_false_hits_within_3_sigma_of_the_model(demo):
     _, out, _, _ = demo
     s, t, d = plan_of(out)
     rows = grab(r"false hits\s+([\d,]+) measured in ([\d,]+) queries; model ([\d.]+) expected", out, 3)
-    weights = [ACTIVE, ACTIVE, ACTIVE - 16]  # noisy rescans keep their weight; partial scans keep 24 bits
+    weights = [WEIGHT, WEIGHT, WEIGHT - 16]  # noisy rescans keep their weight; partial scans keep 24 bits
     for (seen, queries, printed), q in zip(rows, weights):
         expected = number(queries) * (SIZE - 1) * scipy_per_code(s, t, d, q)
         assert number(printed) == pytest.approx(expected, rel=1e-3, abs=0.006)
@@ -122,13 +122,13 @@ def test_false_hits_within_3_sigma_of_the_model(demo):
         r"false-hit rate\s+([\d.]+) per query measured \(([\d,]+) queries hit; 95% CI ([\d.]+)-([\d.]+)\)\s+"
         r"model ([\d.]+)", out, 1)[0]
     queries = number(grab(r"unknown bolts \(never catalogued\): ([\d,]+) random codes", out, 1)[0])
-    predicted = -math.expm1(SIZE * math.log1p(-scipy_per_code(s, t, d, ACTIVE)))
+    predicted = -math.expm1(SIZE * math.log1p(-scipy_per_code(s, t, d, WEIGHT)))
     assert number(model_rate) == pytest.approx(predicted, abs=1e-5)
     assert number(low_ci) <= number(rate) <= number(high_ci)
     assert stats.binom.ppf(TAIL, queries, predicted) <= number(hit) <= stats.binom.isf(TAIL, queries, predicted)
 
 
-def test_dedupe_finds_the_planted_copies(demo):
+def test_near_duplicates_finds_the_planted_copies(demo):
     _, out, _, _ = demo
     found, planted = grab(r"planted re-uploads found ([\d,]+) of ([\d,]+)", out, 1)[0]
     assert number(planted) == round(0.1 * max(500, SIZE // 8)) and number(found) == number(planted)
@@ -138,28 +138,28 @@ def test_dedupe_finds_the_planted_copies(demo):
     assert grab(r"matches not planted ([\d,]+)", out, 1)[0] == "0"
 
 
-def test_health_passes_the_warning_level_and_capacity(demo):
+def test_health_passes_the_warning_level_and_the_limit(demo):
     _, out, _, _ = demo
-    capacity = number(grab(r"capacity ([\d,]+) bolts at the target", out, 1)[0])
+    limit = number(grab(r"limit ([\d,]+) bolts at the target", out, 1)[0])
     assert grab(r">> status (\w+) -> (\w+)", out) == [("healthy", "filling"), ("filling", "saturated")]
-    assert "CapacityWarning" in out
+    assert "SaturationWarning" in out
     rows = grab(r"(?m)^\s+([\d,]+)\s+([\d.]+)%\s+([\d,]+)\s+([\d.]+)\s+([\d.]+) \(([\d.]+)-([\d.]+)\)\s+([\d,]+)"
                 r"\s+(\w+)$", out)
     assert len(rows) >= 4
     s, t, d = plan_of(out)
-    p = scipy_per_code(s, t, d, ACTIVE)
-    for items, fill, headroom, model_now, rate, low, high, probes, status in rows:
+    p = scipy_per_code(s, t, d, WEIGHT)
+    for items, fill, headroom, model_now, rate, low, high, measurements, status in rows:
         n = number(items)
-        assert number(fill) == pytest.approx(100 * n / capacity, abs=0.06)
-        assert number(headroom) == max(0, capacity - n)
-        expected = status == "healthy" if n < 0.8 * capacity else (status == "filling" if n <= capacity
+        assert number(fill) == pytest.approx(100 * n / limit, abs=0.06)
+        assert number(headroom) == max(0, limit - n)
+        expected = status == "healthy" if n < 0.8 * limit else (status == "filling" if n <= limit
                                                                     else status == "saturated")
         assert expected, (items, status)
         predicted = -math.expm1(n * math.log1p(-p))
         assert number(model_now) == pytest.approx(predicted, abs=1e-5)
-        k, q = round(number(rate) * number(probes)), number(probes)
+        k, q = round(number(rate) * number(measurements)), number(measurements)
         assert stats.binom.ppf(TAIL, q, predicted) <= k <= stats.binom.isf(TAIL, q, predicted), (items, k)
-    assert rows[-1][8] == "saturated" and number(rows[-1][0]) >= 1.1 * capacity
+    assert rows[-1][8] == "saturated" and number(rows[-1][0]) >= 1.1 * limit
 
 
 def test_bad_arguments_exit_2(capsys, tmp_path):

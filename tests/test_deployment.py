@@ -65,7 +65,7 @@ def test_parallel_kernels_from_many_threads_under_workqueue():
         import threading
         from sparseindex import Codes, Store
         codes = Codes.random(3000, 256, 16, seed=1)
-        store = Store(256, threshold=5, segment=10, detectors=2, seed=2)
+        store = Store(256, threshold=5, sample_size=10, detectors=2, seed=2)
         store.add(codes)
         want = [store.query_many(codes[i * 50:(i + 1) * 50]) for i in range(8)]
         want_near = store.nearest(codes[7], 5)
@@ -97,7 +97,7 @@ def test_plain_python_kernels_sample_exactly_like_compiled_ones():
     code = textwrap.dedent(
         """
         from sparseindex import Codes, Store
-        store = Store(300, threshold=2, segment=7, detectors=3, seed=2**63 + 12345)
+        store = Store(300, threshold=2, sample_size=7, detectors=3, seed=2**63 + 12345)
         store.add(Codes.random(5, 300, 40, seed=9))
         print([store.detector_bits(i).tolist() for i in range(5)])
         """
@@ -109,18 +109,19 @@ def test_plain_python_kernels_sample_exactly_like_compiled_ones():
 
 
 def test_public_names_survive_importing_their_submodules():
-    """``sparseindex.dedupe`` is the function even after ``import sparseindex.dedupe``."""
+    """Importing a submodule never shadows a public name (the function and its module have different names)."""
     code = textwrap.dedent(
         """
         import sparseindex
-        import sparseindex.dedupe, sparseindex.health
-        from sparseindex.dedupe import planted_duplicates
-        print(callable(sparseindex.dedupe), sparseindex.Health.__name__, sparseindex.ProbeResult.__name__)
+        import sparseindex.near_duplicates, sparseindex.health
+        from sparseindex.near_duplicates import planted_duplicates
+        print(callable(sparseindex.label_near_duplicates), type(sparseindex.near_duplicates).__name__,
+              sparseindex.Health.__name__, sparseindex.FalseHitMeasurement.__name__)
         """
     )
     result = run(code)
     assert result.returncode == 0, result.stderr[-2000:]
-    assert result.stdout.split() == ["True", "Health", "ProbeResult"]
+    assert result.stdout.split() == ["True", "module", "Health", "FalseHitMeasurement"]
 
 
 def test_numba_loads_on_the_first_kernel_call_and_every_kernel_is_swapped_in():

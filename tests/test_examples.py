@@ -4,7 +4,7 @@ Each runs as a user would run it (``python examples/NAME.py ...``, in a new
 process). Outside references, named beside each check: scipy.stats.hypergeom
 for the model's recall and false-hit figures, a scipy.sparse product of the
 codes with their transpose and scipy.sparse.csgraph.connected_components for
-the dedupe labels, and prometheus_client's OpenMetrics parser for the
+the near-duplicate labels, and prometheus_client's OpenMetrics parser for the
 served metrics.
 """
 
@@ -60,15 +60,15 @@ def test_recall_noisy():
     assert "query and query_many agree: yes" in out
 
 
-def test_dedupe_file(tmp_path):
-    out = run("dedupe_file.py", "--reports", 3_000, "--seed", 4)
+def test_near_duplicates_file(tmp_path):
+    out = run("near_duplicates_file.py", "--reports", 3_000, "--seed", 4)
     sample = Path(re.search(r"wrote a sample day of [\d,]+ buoy reports to (\S+)", out).group(1))
     kept_file = Path(re.search(r"one per squall\) -> (\S+)", out).group(1))
     found, planted = map(number, re.search(r"planted retries: ([\d,]+) of ([\d,]+) grouped", out).groups())
     assert planted == 300 and found == planted
     # the script again on its own sample file, writing the labels too
     labels_file = tmp_path / "labels.npy"
-    again = run("dedupe_file.py", sample, "--out", tmp_path / "kept.npy", "--labels", labels_file)
+    again = run("near_duplicates_file.py", sample, "--out", tmp_path / "kept.npy", "--labels", labels_file)
     assert "labels (row of each code's first report)" in again
     rows = np.load(sample)
     labels = np.load(labels_file)
@@ -99,9 +99,9 @@ def test_serve_health():
     assert families["sparseindex_items"].samples[0].value == 4_000
     states = {s.labels["sparseindex_status"]: s.value for s in families["sparseindex_status"].samples}
     assert states == {"healthy": 1, "filling": 0, "saturated": 0, "unknown": 0}
-    capacity = {s.labels["model"]: s.value for s in families["sparseindex_capacity_codes"].samples}
+    limit = {s.labels["model"]: s.value for s in families["sparseindex_limit_codes"].samples}
     headroom = families["sparseindex_headroom_codes"].samples[0].value
-    assert headroom == capacity["operative"] - 4_000 > 0
+    assert headroom == limit["operative"] - 4_000 > 0
 
 
 def test_plan_store():
@@ -109,16 +109,16 @@ def test_plan_store():
     rows = re.findall(r"(?m)^\s+([\d,]+)\s+(\d+)\s+(\d+)\s+(\d+)\s+([\d,]+)\s+([\d.]+)\s+([\d.]+) GiB\s+(\S+)\s+"
                       r"([\d.]+) ms$", out)
     assert [number(r[0]) for r in rows] == [1e5, 1e6, 1e7]
-    bits, active, lost = 4096, 80, math.ceil(0.3 * 80)
-    for count, s, t, d, capacity, recall, gib, updates, _ in rows:
+    bits, weight, lost = 4096, 80, math.ceil(0.3 * 80)
+    for count, s, t, d, limit, recall, gib, updates, _ in rows:
         s, t, d, count = int(s), int(t), int(d), number(count)
         # recall of a query lacking 24 of 80 bits, and the per-code false-hit chance (scipy; D = 1 here)
         assert d == 1
-        expected_recall = stats.hypergeom.sf(t - 1, active, active - lost, s)
+        expected_recall = stats.hypergeom.sf(t - 1, weight, weight - lost, s)
         assert number(recall) == pytest.approx(expected_recall, abs=1e-6) and expected_recall >= 0.999
-        p = stats.hypergeom.sf(t - 1, bits, s, active)
+        p = stats.hypergeom.sf(t - 1, bits, s, weight)
         assert -math.expm1(count * math.log1p(-p)) <= 1e-9
-        assert abs(number(capacity) - math.log1p(-1e-9) / math.log1p(-p)) <= 1
+        assert abs(number(limit) - math.log1p(-1e-9) / math.log1p(-p)) <= 1
         assert number(gib) == pytest.approx(count * (8 * 64 + 2 * s + 5) / 2**30, abs=0.006)
-        assert number(updates) == pytest.approx(active * count * s / bits, rel=1e-2)
+        assert number(updates) == pytest.approx(weight * count * s / bits, rel=1e-2)
     assert "PlanError: false_hit=1e-09 at capacity=10,000,000 cannot be met" in out

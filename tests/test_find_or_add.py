@@ -1,6 +1,6 @@
 """Store.find_or_add against the naive one-at-a-time rule of tests/naive.py.
 
-The configurations include samples smaller than the codes (segment <
+The configurations include samples smaller than the codes (sample_size <
 weight), where the detectors alone cannot guarantee every match and the
 store must scan the codes they do not cover; removed codes, compaction and
 many postings blocks.
@@ -41,10 +41,10 @@ def planted_batch(rng, stored, bits, weight, n, lose):
 @pytest.mark.parametrize(
     "cls, params, min_overlap",
     [
-        (Store, dict(threshold=3, segment=None, detectors=1), 8),   # detectors cover every match
-        (Store, dict(threshold=3, segment=5, detectors=2), 8),      # 8 < 3 + 12 - 5: scan needed
-        (SmallBlockStore, dict(threshold=2, segment=6, detectors=3), 10),
-        (Store, dict(threshold=4, segment=10, detectors=1), 11),    # 11 >= 4 + 12 - 10: covered
+        (Store, dict(threshold=3, sample_size=None, detectors=1), 8),   # detectors cover every match
+        (Store, dict(threshold=3, sample_size=5, detectors=2), 8),      # 8 < 3 + 12 - 5: scan needed
+        (SmallBlockStore, dict(threshold=2, sample_size=6, detectors=3), 10),
+        (Store, dict(threshold=4, sample_size=10, detectors=1), 11),    # 11 >= 4 + 12 - 10: covered
     ],
 )
 def test_matches_the_naive_rule(cls, params, min_overlap):
@@ -74,12 +74,12 @@ code = st.sets(st.integers(0, 39), min_size=3, max_size=12).map(sorted)
     stored=st.lists(code, max_size=12),
     batch=st.lists(code, min_size=1, max_size=12),
     min_overlap=st.integers(1, 6),
-    segment=st.sampled_from([None, 3, 5]),
+    sample_size=st.sampled_from([None, 3, 5]),
     detectors=st.integers(1, 2),
     seed=st.integers(0, 2**32),
 )
-def test_property_every_answer_is_the_naive_one(stored, batch, min_overlap, segment, detectors, seed):
-    store = SmallBlockStore(40, threshold=2 if segment != 3 else 2, segment=segment, detectors=detectors, seed=seed)
+def test_property_every_answer_is_the_naive_one(stored, batch, min_overlap, sample_size, detectors, seed):
+    store = SmallBlockStore(40, threshold=2 if sample_size != 3 else 2, sample_size=sample_size, detectors=detectors, seed=seed)
     if stored:
         store.add(stored)
     reference = live_codes(store)
@@ -123,14 +123,14 @@ def test_large_batch_against_planted_copies():
     assert np.array_equal(ids[2_000:], np.arange(10_000, 12_000))
 
 
-def test_same_rule_as_dedupe_first():
-    """find_or_add on an empty store labels a batch exactly as dedupe(mode="first")."""
-    from sparseindex import dedupe
-    from sparseindex.dedupe import planted_duplicates
+def test_same_rule_as_label_near_duplicates_first():
+    """find_or_add on an empty store labels a batch exactly as label_near_duplicates(mode="first")."""
+    from sparseindex import label_near_duplicates
+    from sparseindex.near_duplicates import planted_duplicates
 
     codes, _, _ = planted_duplicates(3_000, 512, 16, fraction=0.2, max_changed=4, seed=7)
-    labels = dedupe(codes, min_overlap=12, mode="first", method="index")
-    store = Store(512, threshold=3, segment=8, detectors=2, seed=8)
+    labels = label_near_duplicates(codes, min_overlap=12, mode="first", method="index")
+    store = Store(512, threshold=3, sample_size=8, detectors=2, seed=8)
     ids, is_new = store.find_or_add(codes, min_overlap=12)
     reps = np.flatnonzero(labels == np.arange(len(labels)))
     assert np.array_equal(np.flatnonzero(is_new), reps)
@@ -142,7 +142,7 @@ def test_same_rule_as_dedupe_first():
 
 def test_find_matches_is_complete_where_detectors_are_not():
     rng = np.random.default_rng(9)
-    store = SmallBlockStore(96, threshold=3, segment=4, detectors=1, seed=10)
+    store = SmallBlockStore(96, threshold=3, sample_size=4, detectors=1, seed=10)
     codes = [random_code(rng, 96, 14) for _ in range(200)]
     store.add(codes)
     queries = [noisy_copy(rng, codes[i], 96, 5) for i in range(0, 200, 4)]
@@ -158,9 +158,9 @@ def test_find_matches_is_complete_where_detectors_are_not():
 def test_add_with_given_ids_samples_as_the_id_says(tmp_path):
     rng = np.random.default_rng(11)
     codes = [random_code(rng, 128, 10) for _ in range(30)]
-    whole = Store(128, threshold=3, segment=5, detectors=2, seed=12)
+    whole = Store(128, threshold=3, sample_size=5, detectors=2, seed=12)
     whole.add(codes)
-    shard = Store(128, threshold=3, segment=5, detectors=2, seed=12)
+    shard = Store(128, threshold=3, sample_size=5, detectors=2, seed=12)
     mine = list(range(1, 30, 3))
     assert shard.add([codes[i] for i in mine], ids=mine).tolist() == mine
     assert shard.next_id == 29 and shard.ids().tolist() == mine

@@ -1,8 +1,8 @@
-"""Health, probes, OpenMetrics export and status alerts.
+"""Health, measurements, OpenMetrics export and status alerts.
 
 References: scipy.stats.beta (Clopper–Pearson intervals), scipy.stats.hypergeom
 (the uniform false-hit chance, computed here independently of
-``sparseindex.model``), simulation (the probe itself against those), the
+``sparseindex.model``), simulation (the measurement itself against those), the
 ``prometheus_client`` OpenMetrics parser (an independent reader of the
 exposition format), and numpy/scipy.sparse sums for the usage counts.
 """
@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from sparseindex import CapacityWarning, Codes, Store, model
+from sparseindex import SaturationWarning, Codes, Store, model
 
 
 def zipf_codes(n, bits, weight, exponent, seed):
@@ -30,7 +30,7 @@ def zipf_codes(n, bits, weight, exponent, seed):
 def test_probe_interval_is_clopper_pearson():
     store = Store(256, threshold=3, seed=1)
     store.add(Codes.random(3_000, 256, 8, seed=1))
-    r = store.probe(3_000, seed=4)
+    r = store.measure_false_hits(3_000, seed=4)
     k, n = r.queries_hit, r.queries
     assert 0 < k < n
     # Clopper & Pearson (1934): beta quantiles, straight from scipy.stats.beta
@@ -42,24 +42,24 @@ def test_probe_interval_is_clopper_pearson():
 def test_probe_without_hits_reports_the_upper_bound():
     store = Store(2048, threshold=20, seed=2)
     store.add(Codes.random(1_000, 2048, 40, seed=2))
-    r = store.probe(1_000, seed=1)
+    r = store.measure_false_hits(1_000, seed=1)
     assert r.queries_hit == 0 and r.low == 0.0
     assert r.upper == pytest.approx(1 - 0.05 ** (1 / 1_000), rel=1e-9)  # one-sided bound, closed form at 0 hits
-    assert "95% upper bound" in str(r) and store.health().probe is r
+    assert "95% upper bound" in str(r) and store.health().measurement is r
 
 
 def test_uniform_probe_matches_the_hypergeometric_prediction():
-    # small widths inflate the rate to ~1e-2 so that a probe sees it
+    # small widths inflate the rate to ~1e-2 so that a measurement sees it
     bits, weight, threshold, n_codes, queries = 256, 8, 4, 150, 40_000
     store = Store(bits, threshold=threshold, seed=3)
     store.add(Codes.random(n_codes, bits, weight, seed=3))
-    r = store.probe(queries, seed=5)
+    r = store.measure_false_hits(queries, seed=5)
     # a stored code is hit when its overlap with the query is >= threshold:
     # scipy.stats.hypergeom, independently of sparseindex.model
     per_code = stats.hypergeom.sf(threshold - 1, bits, weight, weight)
     expected_hits = n_codes * per_code
     sigma_hits = math.sqrt(expected_hits / queries)  # hits per query are close to Poisson
-    print(f"\nuniform probe: {r.hits_per_query:.5f} hits/query, scipy {expected_hits:.5f} ± {sigma_hits:.5f}; "
+    print(f"\nuniform measurement: {r.hits_per_query:.5f} hits/query, scipy {expected_hits:.5f} ± {sigma_hits:.5f}; "
           f"rate {r.rate:.5f} vs 1-(1-p)^N {1 - (1 - per_code) ** n_codes:.5f}")
     assert abs(r.hits_per_query - expected_hits) < 3 * sigma_hits
     rate = 1 - (1 - per_code) ** n_codes
@@ -69,10 +69,10 @@ def test_uniform_probe_matches_the_hypergeometric_prediction():
 
 def test_skewed_store_usage_model_within_factor_two_uniform_not():
     bits, weight = 256, 16
-    store = Store(bits, threshold=6, segment=8, detectors=1, seed=4)
+    store = Store(bits, threshold=6, sample_size=8, detectors=1, seed=4)
     store.add(zipf_codes(2_000, bits, weight, exponent=1.1, seed=4))
     h = store.health(refresh=True)
-    r = store.probe(20_000, source="usage", seed=6)
+    r = store.measure_false_hits(20_000, source="usage", seed=6)
     assert r.hits >= 100
     usage_pred = r.predicted_hits
     uniform_pred = h.items * h.per_code_uniform
@@ -84,21 +84,21 @@ def test_skewed_store_usage_model_within_factor_two_uniform_not():
     assert h.hottest_bit_load_ratio > 5 and h.effective_bits < bits / 2
 
 
-@pytest.mark.filterwarnings("ignore::sparseindex.CapacityWarning")
-def test_usage_capacity_takes_over_only_when_measurably_worse():
+@pytest.mark.filterwarnings("ignore::sparseindex.SaturationWarning")
+def test_usage_limit_takes_over_only_when_measurably_worse():
     kw = dict(false_hit=1e-3, capacity=5_000, seed=5)
     uniform = Store.for_target(256, 16, **kw)
     uniform.add(Codes.random(3_000, 256, 16, seed=5))
     skewed = Store.for_target(256, 16, **kw)
     skewed.add(zipf_codes(3_000, 256, 16, exponent=1.2, seed=5))
     hu, hs = uniform.health(refresh=True), skewed.health(refresh=True)
-    assert hu.capacity_basis == "uniform" and hu.capacity == hu.capacity_uniform
-    assert hs.capacity_basis == "usage" and hs.capacity == hs.capacity_usage < hs.capacity_uniform
+    assert hu.limit_basis == "uniform" and hu.limit == hu.limit_uniform
+    assert hs.limit_basis == "usage" and hs.limit == hs.limit_usage < hs.limit_uniform
     assert hs.status == "saturated" and hu.status in ("healthy", "filling")
 
 
 def test_usage_counts_follow_adds_removes_compaction_and_loads(tmp_path):
-    store = Store(300, threshold=2, segment=3, detectors=2, seed=6)
+    store = Store(300, threshold=2, sample_size=3, detectors=2, seed=6)
     codes = Codes.random(500, 300, 9, seed=6)
     store.add(codes)
     store.remove(list(range(0, 500, 3)))
@@ -128,7 +128,7 @@ def test_openmetrics_parsed_by_an_independent_parser():
     store.add(Codes.random(6_000, 512, 16, seed=7))
     store.remove([1, 2, 3])
     store.query_many(Codes.random(20, 512, 16, seed=8))
-    store.probe(500, seed=9)
+    store.measure_false_hits(500, seed=9)
     h = store.health()
     families = {f.name: f for f in parser.text_string_to_metric_families(h.to_openmetrics())}
 
@@ -140,27 +140,27 @@ def test_openmetrics_parsed_by_an_independent_parser():
 
     expect = {
         ("items", ()): h.items, ("removed_pending", ()): h.removed_pending,
-        ("capacity_codes", (("model", "operative"),)): h.capacity,
-        ("capacity_codes", (("model", "uniform"),)): h.capacity_uniform,
-        ("capacity_codes", (("model", "usage"),)): h.capacity_usage,
+        ("limit_codes", (("model", "operative"),)): h.limit,
+        ("limit_codes", (("model", "uniform"),)): h.limit_uniform,
+        ("limit_codes", (("model", "usage"),)): h.limit_usage,
         ("headroom_codes", ()): h.headroom_codes, ("headroom_ratio", ()): h.headroom_fraction,
         ("fill_ratio", ()): h.fill_fraction, ("target_false_hit_ratio", ()): h.target_false_hit,
         ("false_hit_ratio", (("model", "operative"), ("at", "now"))): h.false_hit_now,
         ("false_hit_ratio", (("model", "uniform"), ("at", "now"))): h.false_hit_now_uniform,
         ("false_hit_ratio", (("model", "usage"), ("at", "now"))): h.false_hit_now_usage,
-        ("false_hit_ratio", (("model", "operative"), ("at", "capacity"))): h.false_hit_at_capacity,
+        ("false_hit_ratio", (("model", "operative"), ("at", "limit"))): h.false_hit_at_limit,
         ("effective_bits", ()): h.effective_bits, ("unused_bits", ()): h.unused_bits,
         ("hottest_bit_load_ratio", ()): h.hottest_bit_load_ratio,
         ("code_weight_bits", (("stat", "min"),)): h.weight_min,
         ("code_weight_bits", (("stat", "mean"),)): h.weight_mean,
         ("code_weight_bits", (("stat", "max"),)): h.weight_max,
-        ("planned_active_bits", ()): h.planned_active, ("memory_bytes", ()): h.memory_bytes,
-        ("probe_false_hit_ratio", (("value", "observed"),)): h.probe.rate,
-        ("probe_false_hit_ratio", (("value", "low"),)): h.probe.low,
-        ("probe_false_hit_ratio", (("value", "high"),)): h.probe.high,
-        ("probe_false_hit_ratio", (("value", "upper"),)): h.probe.upper,
-        ("probe_false_hit_ratio", (("value", "predicted"),)): h.probe.predicted_rate,
-        ("probe_queries", ()): h.probe.queries,
+        ("planned_weight_bits", ()): h.planned_weight, ("memory_bytes", ()): h.memory_bytes,
+        ("measured_false_hit_ratio", (("value", "observed"),)): h.measurement.rate,
+        ("measured_false_hit_ratio", (("value", "low"),)): h.measurement.low,
+        ("measured_false_hit_ratio", (("value", "high"),)): h.measurement.high,
+        ("measured_false_hit_ratio", (("value", "upper"),)): h.measurement.upper,
+        ("measured_false_hit_ratio", (("value", "predicted"),)): h.measurement.predicted_rate,
+        ("measured_queries", ()): h.measurement.queries,
         ("queries", ()): h.queries_total, ("hits", ()): h.hits_total,
         ("codes_added", ()): h.codes_added_total, ("codes_removed", ()): h.codes_removed_total,
     }
@@ -168,7 +168,7 @@ def test_openmetrics_parsed_by_an_independent_parser():
         assert want is not None, family
         assert value(family, **dict(labels)) == pytest.approx(want, rel=1e-12), family
     assert families["sparseindex_queries"].type == "counter" and value("queries") == 20
-    assert families["sparseindex_capacity_codes"].unit == "codes"
+    assert families["sparseindex_limit_codes"].unit == "codes"
     assert families["sparseindex_status"].type == "stateset"
     assert value("status", sparseindex_status=h.status) == 1
     assert families["sparseindex_store"].type == "info"
@@ -177,26 +177,26 @@ def test_openmetrics_parsed_by_an_independent_parser():
         h.to_openmetrics(prefix="9x")
 
 
-def test_status_transitions_fire_once_each_and_warn_past_capacity():
+def test_status_transitions_fire_once_each_and_warn_past_the_limit():
     store = Store.for_target(256, 8, false_hit=0.05, capacity=400, seed=8, warn_fraction=0.5)
     seen = []
     store.watch(lambda old, new, h: seen.append((old, new, h.items)), warn_fraction=0.5)
-    cap = store.health().capacity_uniform
+    cap = store.health().limit_uniform
     warned = []
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         for k in range(int(cap * 1.4) // 10):
             store.add(Codes.random(10, 256, 8, seed=100 + k))
-        warned = [w for w in caught if issubclass(w.category, CapacityWarning)]
+        warned = [w for w in caught if issubclass(w.category, SaturationWarning)]
     assert [(a, b) for a, b, _ in seen] == [("healthy", "filling"), ("filling", "saturated")]
-    assert seen[0][2] >= 0.5 * cap and seen[1][2] > store.health().capacity - 10
-    assert len(warned) == 1 and "past its capacity" in str(warned[0].message)
+    assert seen[0][2] >= 0.5 * cap and seen[1][2] > store.health().limit - 10
+    assert len(warned) == 1 and "past its limit" in str(warned[0].message)
     store.remove(list(range(int(0.7 * store.health().items))))  # back down: one more transition, no warning
     assert [(a, b) for a, b, _ in seen][2:] == [("saturated", "healthy")] or \
         [(a, b) for a, b, _ in seen][2:] == [("saturated", "filling")]
 
 
-@pytest.mark.filterwarnings("ignore::sparseindex.CapacityWarning")
+@pytest.mark.filterwarnings("ignore::sparseindex.SaturationWarning")
 def test_a_failing_callback_does_not_break_adds():
     store = Store(64, threshold=2, seed=9)
 
@@ -218,7 +218,7 @@ def test_health_exports(tmp_path):
     assert d["items"] == 2_000 and d["target_false_hit"] == 1e-6 and d["status"] == "healthy"
     import json
 
-    assert json.loads(h.to_json())["capacity"] == h.capacity
+    assert json.loads(h.to_json())["limit"] == h.limit
     text = str(h)
     assert "status: HEALTHY" in text and "not proof of identity" in text and "headroom" in text
     assert h.weight_offset == 0.0 and h.target_recall == store.plan.target_recall
@@ -227,12 +227,12 @@ def test_health_exports(tmp_path):
 def test_health_and_probe_argument_errors():
     store = Store(64, threshold=2, seed=11)
     with pytest.raises(ValueError, match="store is empty"):
-        store.probe(10)
+        store.measure_false_hits(10)
     store.add(Codes.random(10, 64, 4, seed=1))
     with pytest.raises(ValueError, match="queries=0"):
-        store.probe(0)
+        store.measure_false_hits(0)
     with pytest.raises(ValueError, match="source='zipf'"):
-        store.probe(10, source="zipf")
+        store.measure_false_hits(10, source="zipf")
     with pytest.raises(ValueError, match="warn_fraction=2"):
         store.health(warn_fraction=2)
     with pytest.raises(ValueError, match="false_hit=1.5"):
@@ -241,16 +241,16 @@ def test_health_and_probe_argument_errors():
         store.watch(print)
     with pytest.raises(TypeError, match="on_status=3"):
         store.watch(3, false_hit=0.1)
-    assert store.health().status == "unknown" and store.health().capacity is None
-    assert model.capacity(store.health(false_hit=0.1).per_code_uniform, 0.1) == store.health(false_hit=0.1).capacity
+    assert store.health().status == "unknown" and store.health().limit is None
+    assert model.code_limit(store.health(false_hit=0.1).per_code_uniform, 0.1) == store.health(false_hit=0.1).limit
 
 
-def test_a_loaded_planned_store_still_warns_past_capacity(tmp_path):
+def test_a_loaded_planned_store_still_warns_past_the_limit(tmp_path):
     store = Store.for_target(256, 8, false_hit=0.05, capacity=400, seed=12)
-    cap = store.health().capacity_uniform
+    cap = store.health().limit_uniform
     store.add(Codes.random(int(cap * 0.9), 256, 8, seed=12))
     store.save(tmp_path / "planned")
     loaded = Store.load(tmp_path / "planned")
     loaded.add(Codes.random(1, 256, 8, seed=13))  # first change: the level is taken here
-    with pytest.warns(CapacityWarning, match="past its capacity"):
+    with pytest.warns(SaturationWarning, match="past its limit"):
         loaded.add(Codes.random(int(cap * 0.3), 256, 8, seed=14))

@@ -21,7 +21,7 @@ from scipy.stats import hypergeom
 from sparseindex import model
 from sparseindex.model import (
     PlanError,
-    capacity,
+    code_limit,
     detector_failure,
     detector_false_hit,
     false_hit_per_code,
@@ -184,7 +184,7 @@ def test_false_hit_per_code_matches_exact_mixture(n, a, q, s, theta, D):
     # Reference: exact rational arithmetic (math.comb + fractions.Fraction)
     # of the full mixture over the overlap, to 1e-12 relative.
     ref = exact_mixture(n, a, q, s, theta, D)
-    ours = false_hit_per_code(n, a, s, theta, D, query_active=q)
+    ours = false_hit_per_code(n, a, s, theta, D, query_weight=q)
     if ref == 0:
         assert ours == 0.0
     else:
@@ -256,11 +256,11 @@ def test_deep_mixture_matches_exact_in_log_space(n, a, q, s, theta, D):
     # chance is far below 1e-100; compared in log space.
     ref = exact_log(exact_mixture(n, a, q, s, theta, D))
     assert ref < math.log(1e-80)
-    ours = false_hit_per_code(n, a, s, theta, D, query_active=q, log=True)
+    ours = false_hit_per_code(n, a, s, theta, D, query_weight=q, log=True)
     assert abs(ours - ref) <= 1e-12 * abs(ref)
 
 
-def test_store_false_hit_and_capacity_exact():
+def test_store_false_hit_and_code_limit_exact():
     # Reference: exact rational arithmetic for 1 - (1 - p)^M.
     for p, M in [(Fraction(1, 10**6), 1000), (Fraction(1, 3), 5),
                  (Fraction(1, 10**20), 10**5), (Fraction(7, 10**9), 123_456)]:
@@ -271,10 +271,10 @@ def test_store_false_hit_and_capacity_exact():
             # with M p < 1e-3 eight terms leave less than 1e-24 relative.
             ref = sum((-1) ** (j + 1) * math.comb(M, j) * p ** j for j in range(1, 9))
         assert rel(store_false_hit(float(p), M), float(ref)) <= 1e-12
-    # capacity: exact largest M with 1 - (1-p)^M <= F, checked by Fraction
+    # code_limit: exact largest M with 1 - (1-p)^M <= F, checked by Fraction
     for p, F in [(Fraction(1, 10), Fraction(1, 2)), (Fraction(1, 1000), Fraction(1, 100)),
                  (Fraction(3, 100), Fraction(1, 5))]:
-        M = capacity(float(p), float(F))
+        M = code_limit(float(p), float(F))
         assert 1 - (1 - p) ** M <= F < 1 - (1 - p) ** (M + 1)
 
 
@@ -283,9 +283,9 @@ def test_store_false_hit_and_capacity_exact():
 # ---------------------------------------------------------------------------
 
 # Ahmad & Hawkins, "How do neurons operate on sparse distributed
-# representations? A mathematical theory of sparsity, neurons and active
+# representations? A mathematical theory of sparsity, neurons and weight
 # dendrites", arXiv:1601.00720 (2016), Table 1: chance that a random pattern
-# of `a` active cells out of n matches a dendritic segment of s synapses at
+# of `a` weight cells out of n matches a dendritic sample_size of s synapses at
 # threshold theta.  These are the values as reproduced from that table in
 # public notes; each was confirmed by exact integer arithmetic (below).
 AHMAD_HAWKINS_TABLE_1 = [
@@ -343,10 +343,10 @@ def test_fact_number_of_distinct_codes():
 # Behaviour: identities, vectorisation, no cancellation
 # ---------------------------------------------------------------------------
 
-def test_segment_none_means_all_bits_and_query_defaults_to_active():
+def test_sample_size_none_means_all_bits_and_query_defaults_to_weight():
     assert false_hit_per_code(500, 20, None, 8, 1) == detector_false_hit(500, 20, 8, 20)
-    assert false_hit_per_code(500, 20, 10, 4, 3, query_active=None) == \
-        false_hit_per_code(500, 20, 10, 4, 3, query_active=20)
+    assert false_hit_per_code(500, 20, 10, 4, 3, query_weight=None) == \
+        false_hit_per_code(500, 20, 10, 4, 3, query_weight=20)
     assert recall(20, None, 15, 1, 0.2) == recall(20, 20, 15, 1, 0.2)
 
 
@@ -363,8 +363,8 @@ def test_vectorised_equals_scalar():
     r = recall(40, s, th, 2, np.array([[0.1], [0.5]]))
     assert r.shape == (2, 3)
     assert isinstance(recall(40, 20, 5), float)
-    assert isinstance(capacity(1e-12, 1e-6), int)
-    assert capacity(np.array([1e-12, 0.0]), 1e-6).dtype == np.float64
+    assert isinstance(code_limit(1e-12, 1e-6), int)
+    assert code_limit(np.array([1e-12, 0.0]), 1e-6).dtype == np.float64
 
 
 def test_log_outputs_agree_and_stay_finite_far_below_doubles():
@@ -389,8 +389,8 @@ def test_no_cancellation_in_complements():
     assert 0 < miss < 1e-25
     assert rel(miss, float(ref)) <= 1e-12
     # a bank of 8 detectors with tiny t: 1-(1-t)^8 ~ 8t
-    assert capacity(1e-300, 0.5) == pytest.approx(math.log(2) / 1e-300, rel=1e-12)
-    assert capacity(-1000.0, 0.5, log=True) == math.inf
+    assert code_limit(1e-300, 0.5) == pytest.approx(math.log(2) / 1e-300, rel=1e-12)
+    assert code_limit(-1000.0, 0.5, log=True) == math.inf
 
 
 def test_mixture_lies_between_one_detector_and_union_bound():
@@ -407,20 +407,20 @@ def test_mixture_lies_between_one_detector_and_union_bound():
 
 @pytest.mark.parametrize("call,message", [
     (lambda: detector_false_hit(2048, 20, 0, 40), r"threshold=0 must be >= 1"),
-    (lambda: detector_false_hit(2048, 20, 21, 40), r"threshold=21 must be <= segment=20"),
+    (lambda: detector_false_hit(2048, 20, 21, 40), r"threshold=21 must be <= sample_size=20"),
     (lambda: detector_false_hit(0, 1, 1, 0), r"bits=0 must be >= 1"),
-    (lambda: detector_false_hit(2048, 20, 5, 3000), r"query_active=3000 must be <= bits=2048"),
-    (lambda: detector_false_hit(2048, 20, 5, -1), r"query_active=-1 must be >= 0"),
-    (lambda: detector_false_hit(2048, 2.5, 1, 40), r"segment=2.5 must be an integer"),
-    (lambda: detector_false_hit(2048, float("nan"), 1, 40), r"segment=nan must be an integer"),
-    (lambda: detector_false_hit(2048, True, 1, 40), r"segment=True must be an integer"),
-    (lambda: detector_false_hit(2048, "20", 1, 40), r"segment='20' must be an integer"),
-    (lambda: false_hit_per_code(100, 200, 10, 5), r"active=200 must be <= bits=100"),
-    (lambda: false_hit_per_code(100, 0, 10, 5), r"active=0 must be >= 1"),
-    (lambda: false_hit_per_code(100, 20, 30, 5), r"segment=30 must be <= active=20"),
+    (lambda: detector_false_hit(2048, 20, 5, 3000), r"query_weight=3000 must be <= bits=2048"),
+    (lambda: detector_false_hit(2048, 20, 5, -1), r"query_weight=-1 must be >= 0"),
+    (lambda: detector_false_hit(2048, 2.5, 1, 40), r"sample_size=2.5 must be an integer"),
+    (lambda: detector_false_hit(2048, float("nan"), 1, 40), r"sample_size=nan must be an integer"),
+    (lambda: detector_false_hit(2048, True, 1, 40), r"sample_size=True must be an integer"),
+    (lambda: detector_false_hit(2048, "20", 1, 40), r"sample_size='20' must be an integer"),
+    (lambda: false_hit_per_code(100, 200, 10, 5), r"weight=200 must be <= bits=100"),
+    (lambda: false_hit_per_code(100, 0, 10, 5), r"weight=0 must be >= 1"),
+    (lambda: false_hit_per_code(100, 20, 30, 5), r"sample_size=30 must be <= weight=20"),
     (lambda: false_hit_per_code(100, 20, 10, 5, 0), r"detectors=0 must be >= 1"),
     (lambda: false_hit_per_code(100, 20, [10, 12], [5, 13]),
-     r"threshold=13 must be <= segment=12"),
+     r"threshold=13 must be <= sample_size=12"),
     (lambda: recall(40, 20, 5, 1, 1.0), r"noise=1.0 must be < 1"),
     (lambda: recall(40, 20, 5, 1, -0.1), r"noise=-0.1 must be >= 0"),
     (lambda: recall(40, 20, 5, 1, float("nan")), r"noise=nan must be a number"),
@@ -429,8 +429,8 @@ def test_mixture_lies_between_one_detector_and_union_bound():
     (lambda: store_false_hit(-0.5, 10), r"per_code=-0.5 must be >= 0"),
     (lambda: store_false_hit(0.1, -3), r"items=-3 must be >= 0"),
     (lambda: store_false_hit(0.5, 3, log=True), r"per_code=0.5 must be <= 0"),
-    (lambda: capacity(1e-9, 0.0), r"false_hit=0.0 must be > 0"),
-    (lambda: capacity(1e-9, 1.0), r"false_hit=1.0 must be < 1"),
+    (lambda: code_limit(1e-9, 0.0), r"false_hit=0.0 must be > 0"),
+    (lambda: code_limit(1e-9, 1.0), r"false_hit=1.0 must be < 1"),
 ])
 def test_bad_input_raises_value_error_quoting_the_value(call, message):
     with pytest.raises(ValueError, match=message):
@@ -484,16 +484,16 @@ def test_recall_monotone_in_noise(code, D, data):
 @given(st.floats(min_value=1e-30, max_value=0.5),
        st.floats(min_value=1e-12, max_value=0.9),
        st.integers(min_value=0, max_value=10**9))
-def test_store_false_hit_and_capacity_properties(p, F, items):
+def test_store_false_hit_and_code_limit_properties(p, F, items):
     # grows with the number of items, is at most M p
     f = store_false_hit(p, items)
     assert f <= store_false_hit(p, items + 1)
     assert f <= items * p * (1 + 1e-12)
-    # capacity is the largest count within the target, by store_false_hit
-    m = capacity(p, F)
+    # the limit is the largest count within the target, by store_false_hit
+    m = code_limit(p, F)
     assert store_false_hit(p, m) <= F
     if m < 2**52:
         assert store_false_hit(p, m + 1) > F
-    # capacity grows with the target and shrinks with the per-code chance
-    assert capacity(p, min(0.99, F * 2)) >= m
-    assert capacity(min(1.0, p * 2), F) <= m
+    # the limit grows with the target and shrinks with the per-code chance
+    assert code_limit(p, min(0.99, F * 2)) >= m
+    assert code_limit(min(1.0, p * 2), F) <= m

@@ -1,7 +1,7 @@
 """Monte-Carlo checks of the analytic model (reference: simulation).
 
 Each check draws random codes, detectors and queries with numpy and applies
-the detector rule literally -- a detector samples ``segment`` of a stored
+the detector rule literally -- a detector samples ``sample_size`` of a stored
 code's set bits and fires when at least ``threshold`` of them are set in the
 query; a code is hit when any detector of its bank fires -- with no
 hypergeometric formula involved.  The observed count must lie within 3
@@ -67,7 +67,7 @@ FALSE_HIT_CASES = [
 @pytest.mark.parametrize("n,a,q,s,theta,D,trials", FALSE_HIT_CASES)
 def test_false_hit_per_code_by_simulation(n, a, q, s, theta, D, trials):
     # Reference: Monte-Carlo simulation of the detector rule (numpy).
-    p = model.false_hit_per_code(n, a, s, theta, D, query_active=q)
+    p = model.false_hit_per_code(n, a, s, theta, D, query_weight=q)
     assert 1e-3 <= p <= 1e-1
     rng = np.random.default_rng([n, a, q, s, theta, D])
     ok, info = within_3_sigma(simulate_code_hits(rng, n, a, q, s, theta, D, trials),
@@ -174,7 +174,7 @@ def test_store_false_hit_by_simulation(items):
                                                     (2048, 40, 40, 20, 4, 3, 200_000)])
 def test_false_hit_by_long_simulation(n, a, q, s, theta, D, trials):
     # Reference: simulation, rarer events (1e-4 .. 1e-3) with more trials.
-    p = model.false_hit_per_code(n, a, s, theta, D, query_active=q)
+    p = model.false_hit_per_code(n, a, s, theta, D, query_weight=q)
     assert 1e-4 <= p <= 1e-2
     rng = np.random.default_rng([n, s, theta, D])
     ok, info = within_3_sigma(simulate_code_hits(rng, n, a, q, s, theta, D, trials),

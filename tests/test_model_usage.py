@@ -69,9 +69,9 @@ def rel_err(value, exact):
     return abs(value - exact) / exact if exact else abs(value)
 
 
-def zipf(bits, active, exponent):
+def zipf(bits, weight, exponent):
     f = 1.0 / np.arange(1, bits + 1) ** exponent
-    return f / f.sum() * active
+    return f / f.sum() * weight
 
 
 # ---------------------------------------------------------------------------
@@ -453,13 +453,13 @@ BAD = [
     (lambda: detector_fire_probability(P8, [[0, 1], [3, 3]], 1, 2), r"detector 1 repeats bit index 3"),
     (lambda: detector_fire_probability(P8, [0, 1], 3, 2), r"threshold=3 exceeds the 2 sampled bits"),
     (lambda: detector_fire_probability(P8, [0, 1], 0, 2), r"threshold=0 must be >= 1"),
-    (lambda: detector_fire_probability(P8, [0, 1], 1, 9), r"query_active=9 is impossible"),
-    (lambda: detector_fire_probability(P8, [0, 1], 1, -2), r"query_active=-2 must be >= 0"),
-    (lambda: detector_fire_probability(P8, [0, 1], 1, 2.5), r"query_active=2\.5 must be an integer"),
-    (lambda: detector_fire_probability([1, 1, 1, 0.5], [0], 1, 2), r"query_active=2 is impossible: 3 bits"),
+    (lambda: detector_fire_probability(P8, [0, 1], 1, 9), r"query_weight=9 is impossible"),
+    (lambda: detector_fire_probability(P8, [0, 1], 1, -2), r"query_weight=-2 must be >= 0"),
+    (lambda: detector_fire_probability(P8, [0, 1], 1, 2.5), r"query_weight=2\.5 must be an integer"),
+    (lambda: detector_fire_probability([1, 1, 1, 0.5], [0], 1, 2), r"query_weight=2 is impossible: 3 bits"),
     (lambda: usage_bernoulli([1, -2, 3], 1), r"frequencies\[1\]=-2\.0 must be finite"),
     (lambda: usage_bernoulli([0, 0, 0], 1), r"all zero"),
-    (lambda: usage_bernoulli([1, 0, 1], 3), r"query_active=3 is impossible: only 2"),
+    (lambda: usage_bernoulli([1, 0, 1], 3), r"query_weight=3 is impossible: only 2"),
     (lambda: sample_usage_queries(P8, 2, -1), r"count=-1 must be >= 0"),
     (lambda: usage_false_hits(P8, [], 1, 2, items=3), r"codes must be a non-empty"),
     (lambda: usage_false_hits(P8, [np.array([[0, 1]])] * 4, 1, 2, items=3),

@@ -26,7 +26,7 @@ class SmallBlockStore(Store):
 
 
 def make_store(n=100, bits=128, weight=9, seed=11, cls=Store, remove=(3, 50), **params):
-    params = {"threshold": 3, "segment": 5, "detectors": 2, **params}
+    params = {"threshold": 3, "sample_size": 5, "detectors": 2, **params}
     store = cls(bits, seed=seed, **params)
     store.add(Codes.random(n, bits, weight, seed=seed))
     if remove:
@@ -63,7 +63,7 @@ def assert_same(a, b):
     [
         lambda: make_store(),
         lambda: make_store(cls=SmallBlockStore),
-        lambda: make_store(segment=None, detectors=1, remove=()),
+        lambda: make_store(sample_size=None, detectors=1, remove=()),
         lambda: make_store(n=0, remove=()),
         lambda: Store.for_target(512, 16, false_hit=1e-3, capacity=1000, noise=0.1, seed=2),
     ],
@@ -320,7 +320,7 @@ def test_hostile_contents_with_valid_crcs(tmp_path):
 def test_versions(tmp_path):
     data = file_bytes(make_store())
     text = json.dumps(header_of(data), separators=(",", ":")).encode()
-    with pytest.raises(StoreFormatError, match="major version 2 is not supported"):
+    with pytest.raises(StoreFormatError, match=r"store file format 2\.1 is not supported: this library reads 1\.0 to 1\.1"):
         load_bytes(tmp_path, reheader(data, text, major=2))
     # newer minor: loads with a warning, ignoring keys it does not know
     header = header_of(data)
@@ -399,10 +399,10 @@ def test_each_failing_os_call_leaves_the_old_store(tmp_path, monkeypatch):
     path = tmp_path / "store.sidx"
     old.save(path)
     old_bytes = path.read_bytes()
-    probe = FaultyOs()
-    monkeypatch.setattr(_persist, "os", probe)
+    faulty = FaultyOs()
+    monkeypatch.setattr(_persist, "os", faulty)
     new.save(path)  # over an existing file, as in every run below
-    sequence = probe.calls
+    sequence = faulty.calls
     monkeypatch.setattr(_persist, "os", os)
     old.save(path)
     must_fail = {"write", "fsync", "replace", "fsync-dir", "open", "open-dir"}

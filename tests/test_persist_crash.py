@@ -20,7 +20,7 @@ pytestmark = pytest.mark.skipif(not hasattr(os, "fork"), reason="needs os.fork")
 
 
 def _store(seed, n):
-    store = Store(2048, threshold=10, segment=20, detectors=1, seed=seed)
+    store = Store(2048, threshold=10, sample_size=20, detectors=1, seed=seed)
     store.add(Codes.random(n, 2048, 40, seed=seed))
     return store
 

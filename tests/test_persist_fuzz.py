@@ -25,7 +25,7 @@ class TinyBlockStore(Store):
 
 
 def _valid_file() -> bytes:
-    store = TinyBlockStore(64, threshold=2, segment=3, detectors=2, seed=8)
+    store = TinyBlockStore(64, threshold=2, sample_size=3, detectors=2, seed=8)
     store.add(Codes.random(12, 64, 6, seed=8))
     store.remove([4])
     return _persist.dumps(store._state())

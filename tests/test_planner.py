@@ -1,6 +1,6 @@
 """Tests of sparseindex.planner.plan and the ``plan`` subcommand.
 
-References: brute-force enumeration of every (segment, threshold, detectors)
+References: brute-force enumeration of every (sample_size, threshold, detectors)
 with the public model functions (which are themselves checked against
 scipy.stats and exact rationals in test_model.py); hypothesis properties.
 """
@@ -70,7 +70,7 @@ def test_plan_is_optimal_against_brute_force(n, a, F, M, noise, R, max_d):
         return
     p = plan(n, a, false_hit=F, capacity=M, noise=noise, recall=R,
              max_detectors=max_d)
-    got = [(q.segment, q.threshold, q.detectors) for q in (p,) + p.alternatives]
+    got = [(q.sample_size, q.threshold, q.detectors) for q in (p,) + p.alternatives]
     assert got == ranked[:len(got)]
     assert len(got) == min(4, len(ranked))
 
@@ -96,7 +96,7 @@ def test_plan_matches_brute_force_on_random_small_requests(code, F, M, noise, R,
     except PlanError:
         assert ranked == []
         return
-    got = [(q.segment, q.threshold, q.detectors) for q in (p,) + p.alternatives]
+    got = [(q.sample_size, q.threshold, q.detectors) for q in (p,) + p.alternatives]
     assert got == ranked[:len(got)]
     for q in (p,) + p.alternatives:
         check_meets_targets(q)
@@ -104,25 +104,25 @@ def test_plan_matches_brute_force_on_random_small_requests(code, F, M, noise, R,
 
 def check_meets_targets(p):
     """Recompute a plan's numbers with the public model; targets hold."""
-    per_code = model.false_hit_per_code(p.bits, p.active, p.segment, p.threshold,
+    per_code = model.false_hit_per_code(p.bits, p.weight, p.sample_size, p.threshold,
                                         p.detectors)
     assert per_code == pytest.approx(p.false_hit_per_code, rel=1e-12)
     per_query = model.store_false_hit(per_code, p.target_capacity)
     assert per_query <= p.target_false_hit * (1 + 1e-12)
     assert per_query == pytest.approx(p.false_hit_per_query, rel=1e-12)
-    r = model.recall(p.active, p.segment, p.threshold, p.detectors, p.noise)
+    r = model.recall(p.weight, p.sample_size, p.threshold, p.detectors, p.noise)
     # (exact ties such as recall == 0.5 occur on small codes: allow rounding)
     assert r >= p.target_recall * (1 - 1e-12)
-    miss = model.recall(p.active, p.segment, p.threshold, p.detectors, p.noise,
+    miss = model.recall(p.weight, p.sample_size, p.threshold, p.detectors, p.noise,
                         complement=True)
     assert miss <= (1 - p.target_recall) * (1 + 1e-12)
     assert miss == pytest.approx(p.miss, rel=1e-12, abs=1e-300)
     assert r == pytest.approx(p.recall, rel=1e-12)
-    assert p.capacity >= p.target_capacity
-    assert p.capacity == model.capacity(per_code, p.target_false_hit)
-    assert p.postings_per_code == p.segment * p.detectors
-    assert isinstance(p.segment, int) and isinstance(p.threshold, int)
-    assert 1 <= p.threshold <= p.segment <= p.active
+    assert p.limit >= p.target_capacity
+    assert p.limit == model.code_limit(per_code, p.target_false_hit)
+    assert p.postings_per_code == p.sample_size * p.detectors
+    assert isinstance(p.sample_size, int) and isinstance(p.threshold, int)
+    assert 1 <= p.threshold <= p.sample_size <= p.weight
     assert 1 <= p.detectors <= p.max_detectors
 
 
@@ -170,19 +170,19 @@ def test_cost_monotone_in_noise_and_capacity(code, noise, extra, M, factor):
     assert _cost(n, a, **{**base, "recall": 0.999}) >= c0
 
 
-def test_thresholds_rise_with_segment_at_zero_noise():
-    # With no noise every threshold <= segment recalls; the plan takes the
-    # highest, threshold == segment.
+def test_thresholds_rise_with_sample_size_at_zero_noise():
+    # With no noise every threshold <= sample_size recalls; the plan takes the
+    # highest, threshold == sample_size.
     p = plan(10**6, 2000, false_hit=1e-9, capacity=10**6)
-    assert p.threshold == p.segment and p.recall == 1.0 and p.miss == 0.0
+    assert p.threshold == p.sample_size and p.recall == 1.0 and p.miss == 0.0
 
 
 def test_several_detectors_can_be_cheapest():
     # With a lenient false-hit target, two 2-bit detectors at threshold 1
     # cost as much as one 4-bit detector and give fewer false hits.
     p = plan(4096, 12, false_hit=0.1, capacity=1, noise=0.3, recall=0.99)
-    assert (p.segment, p.threshold, p.detectors) == (2, 1, 2)
-    assert (4, 1, 1) in [(q.segment, q.threshold, q.detectors) for q in p.alternatives]
+    assert (p.sample_size, p.threshold, p.detectors) == (2, 1, 2)
+    assert (4, 1, 1) in [(q.sample_size, q.threshold, q.detectors) for q in p.alternatives]
     check_meets_targets(p)
 
 
@@ -194,22 +194,22 @@ def test_plan_object_is_frozen_and_serialisable():
     p = plan(2048, 40, false_hit=1e-9, capacity=10**6, noise=0.25)
     assert isinstance(p, Plan)
     with pytest.raises(dataclasses.FrozenInstanceError):
-        p.segment = 3
+        p.sample_size = 3
     d = p.to_dict()
     text = json.dumps(d)
     back = json.loads(text)
-    assert back["segment"] == p.segment and back["threshold"] == p.threshold
+    assert back["sample_size"] == p.sample_size and back["threshold"] == p.threshold
     assert len(back["alternatives"]) == len(p.alternatives) == 3
     assert back["alternatives"][0]["alternatives"] == []
     assert back["target_false_hit"] == 1e-9 and back["target_capacity"] == 10**6
     s = str(p)
-    assert f"segment {p.segment}" in s and "per query" in s and "alternatives" in s
+    assert f"sample size {p.sample_size}" in s and "per query" in s and "alternatives" in s
 
 
-def test_segment_may_equal_active_and_is_an_int():
+def test_sample_size_may_equal_weight_and_is_an_int():
     p = plan(64, 8, false_hit=0.2, capacity=2, noise=0.3, recall=0.999)
-    assert type(p.segment) is int
-    assert p.segment <= 8
+    assert type(p.sample_size) is int
+    assert p.sample_size <= 8
 
 
 # ---------------------------------------------------------------------------
@@ -222,10 +222,10 @@ def test_impossible_false_hit_names_the_target_and_best_values():
     msg = str(info.value)
     assert "false_hit=1e-09 at capacity=1,000,000 cannot be met" in msg
     assert "recall=0.999 at noise=0.8" in msg
-    assert "lowest reachable" in msg and "segment" in msg and "threshold" in msg
+    assert "lowest reachable" in msg and "sample size" in msg and "threshold" in msg
 
 
-def test_impossible_false_hit_reports_reachable_capacity():
+def test_impossible_false_hit_reports_the_reachable_limit():
     with pytest.raises(PlanError, match=r"only up to [\d,]+ codes"):
         plan(64, 8, false_hit=1e-3, capacity=10, noise=0.3)
 
@@ -242,8 +242,8 @@ def test_plan_error_is_value_error():
 
 @pytest.mark.parametrize("kwargs,message", [
     (dict(bits=0), r"bits=0 must be >= 1"),
-    (dict(active=0), r"active=0 must be >= 1"),
-    (dict(active=5000), r"active=5000 must be <= bits=2048"),
+    (dict(weight=0), r"weight=0 must be >= 1"),
+    (dict(weight=5000), r"weight=5000 must be <= bits=2048"),
     (dict(false_hit=0.0), r"false_hit=0.0 must be > 0 and < 1"),
     (dict(false_hit=1.0), r"false_hit=1.0 must be > 0 and < 1"),
     (dict(capacity=0), r"capacity=0 must be >= 1"),
@@ -259,12 +259,12 @@ def test_plan_error_is_value_error():
     (dict(recall="high"), r"recall='high' must be a number"),
 ])
 def test_bad_input_raises_value_error_quoting_the_value(kwargs, message):
-    args = dict(bits=2048, active=40, false_hit=1e-9, capacity=10**6, noise=0.25,
+    args = dict(bits=2048, weight=40, false_hit=1e-9, capacity=10**6, noise=0.25,
                 recall=0.999, max_detectors=8)
     args.update(kwargs)
-    bits, active = args.pop("bits"), args.pop("active")
+    bits, weight = args.pop("bits"), args.pop("weight")
     with pytest.raises(ValueError, match=message) as info:
-        plan(bits, active, **args)
+        plan(bits, weight, **args)
     assert not isinstance(info.value, PlanError)
 
 
@@ -279,7 +279,7 @@ def _parser():
 
 
 def test_cli_prints_table_with_units(capsys):
-    args = _parser().parse_args(["plan", "--bits", "2048", "--active", "40",
+    args = _parser().parse_args(["plan", "--bits", "2048", "--weight", "40",
                                  "--false-hit", "1e-9", "--capacity", "1000000",
                                  "--noise", "0.25"])
     assert _cli_plan.run(args) == 0
@@ -288,11 +288,11 @@ def test_cli_prints_table_with_units(capsys):
     assert "[bits]" in out and "[codes]" in out and "[/query]" in out
     assert "chosen" in out and "option 4" in out
     chosen = next(line for line in out.splitlines() if line.strip().startswith("chosen"))
-    assert chosen.split()[1:4] == [str(p.segment), str(p.threshold), str(p.detectors)]
+    assert chosen.split()[1:4] == [str(p.sample_size), str(p.threshold), str(p.detectors)]
 
 
 def test_cli_json_matches_plan(capsys):
-    args = _parser().parse_args(["plan", "--bits", "1e6", "--active", "2000",
+    args = _parser().parse_args(["plan", "--bits", "1e6", "--weight", "2000",
                                  "--false-hit", "1e-9", "--capacity", "1,000,000",
                                  "--noise", "0.5", "--json"])
     assert _cli_plan.run(args) == 0
@@ -302,11 +302,11 @@ def test_cli_json_matches_plan(capsys):
 
 
 @pytest.mark.parametrize("argv,needle", [
-    (["--bits", "2048", "--active", "0", "--false-hit", "1e-9", "--capacity", "10"],
-     "active=0 must be >= 1"),
-    (["--bits", "2048", "--active", "40", "--false-hit", "1e-9", "--capacity", "10",
+    (["--bits", "2048", "--weight", "0", "--false-hit", "1e-9", "--capacity", "10"],
+     "weight=0 must be >= 1"),
+    (["--bits", "2048", "--weight", "40", "--false-hit", "1e-9", "--capacity", "10",
       "--noise", "0.99"], "cannot be met"),
-    (["--bits", "2048", "--active", "40", "--false-hit", "2", "--capacity", "10"],
+    (["--bits", "2048", "--weight", "40", "--false-hit", "2", "--capacity", "10"],
      "false_hit=2.0"),
 ])
 def test_cli_bad_or_impossible_request_exits_2_with_one_line(capsys, argv, needle):
@@ -320,7 +320,7 @@ def test_cli_bad_or_impossible_request_exits_2_with_one_line(capsys, argv, needl
 
 def test_cli_malformed_numbers_exit_2(capsys):
     with pytest.raises(SystemExit) as info:
-        _parser().parse_args(["plan", "--bits", "wide", "--active", "40",
+        _parser().parse_args(["plan", "--bits", "wide", "--weight", "40",
                               "--false-hit", "1e-9", "--capacity", "10"])
     assert info.value.code == 2
     assert "'wide' is not a whole number" in capsys.readouterr().err

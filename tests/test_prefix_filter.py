@@ -37,12 +37,12 @@ def _with_cost(store, cost):
 
 @pytest.mark.parametrize("cost", COSTS)
 @pytest.mark.parametrize("store_class", [Store, SmallBlockStore])
-@pytest.mark.parametrize("threshold, segment", [(3, None), (6, None), (4, 20)])
-def test_answers_equal_the_naive_model_at_every_plan(cost, store_class, threshold, segment):
-    """segment=None, or a segment no code exceeds: detectors are whole codes, so the plan may lower."""
-    rng = np.random.default_rng(threshold * 7 + (segment or 0))
+@pytest.mark.parametrize("threshold, sample_size", [(3, None), (6, None), (4, 20)])
+def test_answers_equal_the_naive_model_at_every_plan(cost, store_class, threshold, sample_size):
+    """sample_size=None, or a sample_size no code exceeds: detectors are whole codes, so the plan may lower."""
+    rng = np.random.default_rng(threshold * 7 + (sample_size or 0))
     bits = 90
-    store = _with_cost(store_class(bits, threshold=threshold, segment=segment, seed=4), cost)
+    store = _with_cost(store_class(bits, threshold=threshold, sample_size=sample_size, seed=4), cost)
     naive = NaiveStore(threshold)
     for _ in range(3):
         rows = _rows(rng, int(rng.integers(20, 60)), bits, threshold, 18)
@@ -64,8 +64,8 @@ def test_answers_equal_the_naive_model_at_every_plan(cost, store_class, threshol
 
 
 def test_sampled_detectors_never_lower_the_threshold():
-    """A code heavier than its segment: the plan must scan every bit at the full threshold."""
-    store = Store(64, threshold=2, segment=3, seed=1)
+    """A code heavier than its sample_size: the plan must scan every bit at the full threshold."""
+    store = Store(64, threshold=2, sample_size=3, seed=1)
     store.add([[1, 2, 3, 4, 5]])
     assert not store._bank.whole_codes
     q_bits = np.array([1, 2, 3, 4, 5, 9], dtype=np.int64)
@@ -125,12 +125,12 @@ def test_a_query_lighter_than_the_threshold_scans_nothing():
 @pytest.mark.jit_only
 def test_expected_candidates_match_a_count_on_random_codes():
     """The plan's Poisson-binomial estimate against the candidates actually counted (simulation)."""
-    bits, active, threshold, n = 2048, 40, 20, 200_000
-    codes = Codes.random(n, bits, active, seed=2)
+    bits, weight, threshold, n = 2048, 40, 20, 200_000
+    codes = Codes.random(n, bits, weight, seed=2)
     store = Store(bits, threshold=threshold, seed=3)
     store.add(codes)
     bank = store._bank
-    queries = Codes.random(30, bits, active, seed=9)
+    queries = Codes.random(30, bits, weight, seed=9)
     indptr, q_all = queries._csr()
     predicted = observed = 0.0
     for i in range(30):

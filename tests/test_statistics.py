@@ -21,17 +21,17 @@ from sparseindex import Codes, Store
 pytestmark = pytest.mark.jit_only
 
 
-def reference_false_hit_per_code(bits, active, query_active, segment, threshold, detectors):
-    """Mixture over the overlap z ~ Hyp(bits, active, q); per detector Hyp(active, z, segment) >= threshold."""
-    z = np.arange(0, min(active, query_active) + 1)
-    p_overlap = hypergeom.pmf(z, bits, active, query_active)
-    p_detector = hypergeom.sf(threshold - 1, active, z, segment)
+def reference_false_hit_per_code(bits, weight, query_weight, sample_size, threshold, detectors):
+    """Mixture over the overlap z ~ Hyp(bits, weight, q); per detector Hyp(weight, z, sample_size) >= threshold."""
+    z = np.arange(0, min(weight, query_weight) + 1)
+    p_overlap = hypergeom.pmf(z, bits, weight, query_weight)
+    p_detector = hypergeom.sf(threshold - 1, weight, z, sample_size)
     p_any = 1.0 - (1.0 - p_detector) ** detectors
     return float(np.sum(p_overlap * p_any))
 
 
-def reference_recall(active, segment, threshold, detectors, lost):
-    r1 = hypergeom.sf(threshold - 1, active, active - lost, segment)
+def reference_recall(weight, sample_size, threshold, detectors, lost):
+    r1 = hypergeom.sf(threshold - 1, weight, weight - lost, sample_size)
     return 1.0 - (1.0 - r1) ** detectors
 
 
@@ -40,24 +40,24 @@ def within_3_sigma(count, trials, p):
     return abs(count - trials * p) <= 3 * sigma, f"observed {count}, expected {trials * p:.1f} +- {3 * sigma:.1f}"
 
 
-@pytest.mark.parametrize("segment, threshold, detectors", [(8, 3, 1), (8, 3, 2)])
-def test_false_hit_rate_of_random_queries(segment, threshold, detectors):
-    bits, active = 256, 16
-    store = Store(bits, threshold=threshold, segment=segment, detectors=detectors, seed=17)
-    store.add(Codes.random(4000, bits, active, seed=1))
-    queries = Codes.random(500, bits, active, seed=2)
+@pytest.mark.parametrize("sample_size, threshold, detectors", [(8, 3, 1), (8, 3, 2)])
+def test_false_hit_rate_of_random_queries(sample_size, threshold, detectors):
+    bits, weight = 256, 16
+    store = Store(bits, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=17)
+    store.add(Codes.random(4000, bits, weight, seed=1))
+    queries = Codes.random(500, bits, weight, seed=2)
     hits = store.query_many(queries)
-    p = reference_false_hit_per_code(bits, active, active, segment, threshold, detectors)
+    p = reference_false_hit_per_code(bits, weight, weight, sample_size, threshold, detectors)
     ok, msg = within_3_sigma(len(hits.ids), 4000 * 500, p)
     assert ok, msg
 
 
-@pytest.mark.parametrize("segment, threshold, detectors", [(8, 3, 1), (8, 3, 2)])
-def test_recall_of_noisy_copies(segment, threshold, detectors):
+@pytest.mark.parametrize("sample_size, threshold, detectors", [(8, 3, 1), (8, 3, 2)])
+def test_recall_of_noisy_copies(sample_size, threshold, detectors):
     """A copy that lost 12 of 16 bits (replaced from outside the code) hits its source with rate r."""
-    bits, active, lost, n = 256, 16, 12, 6000
-    codes = Codes.random(n, bits, active, seed=3)
-    store = Store(bits, threshold=threshold, segment=segment, detectors=detectors, seed=19)
+    bits, weight, lost, n = 256, 16, 12, 6000
+    codes = Codes.random(n, bits, weight, seed=3)
+    store = Store(bits, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=19)
     store.add(codes)
     rng = np.random.default_rng(4)
     dense = codes.to_dense()
@@ -69,7 +69,7 @@ def test_recall_of_noisy_copies(segment, threshold, detectors):
         noisy[i, rng.choice(off, lost, replace=False)] = True
     batch = store.query_many(noisy)
     recalled = sum(int(i in set(batch[i].ids.tolist())) for i in range(n))
-    p = reference_recall(active, segment, threshold, detectors, lost)
+    p = reference_recall(weight, sample_size, threshold, detectors, lost)
     ok, msg = within_3_sigma(recalled, n, p)
     assert ok, msg
 
@@ -82,20 +82,20 @@ def test_store_built_for_a_target_meets_the_model():
     with it within 3 sigma for false hits of random queries and for recall
     of noisy copies.
     """
-    from sparseindex import CapacityWarning, model
+    from sparseindex import SaturationWarning, model
 
-    bits, active, noise = 256, 16, 0.25
-    store = Store.for_target(bits, active, false_hit=0.5, capacity=300, noise=noise, recall=0.9, seed=23)
+    bits, weight, noise = 256, 16, 0.25
+    store = Store.for_target(bits, weight, false_hit=0.5, capacity=300, noise=noise, recall=0.9, seed=23)
     chosen = store.plan
     assert chosen.recall >= 0.9 and chosen.false_hit_per_query <= 0.5
-    codes = Codes.random(3000, bits, active, seed=24)
-    with pytest.warns(CapacityWarning):  # 3,000 codes is past this plan's capacity, on purpose
+    codes = Codes.random(3000, bits, weight, seed=24)
+    with pytest.warns(SaturationWarning):  # 3,000 codes is past this plan's limit, on purpose
         store.add(codes)
-    queries = Codes.random(2000, bits, active, seed=25)
-    p_code = model.false_hit_per_code(bits, active, chosen.segment, chosen.threshold, chosen.detectors)
+    queries = Codes.random(2000, bits, weight, seed=25)
+    p_code = model.false_hit_per_code(bits, weight, chosen.sample_size, chosen.threshold, chosen.detectors)
     ok, msg = within_3_sigma(len(store.query_many(queries).ids), 3000 * 2000, p_code)
     assert ok, msg
-    lost = math.ceil(noise * active)
+    lost = math.ceil(noise * weight)
     rng = np.random.default_rng(26)
     dense = codes.to_dense()
     for i in range(len(codes)):
@@ -104,6 +104,6 @@ def test_store_built_for_a_target_meets_the_model():
         dense[i, rng.choice(off, lost, replace=False)] = True
     batch = store.query_many(dense)
     recalled = sum(int(i in set(batch[i].ids.tolist())) for i in range(len(codes)))
-    r = model.recall(active, chosen.segment, chosen.threshold, chosen.detectors, noise=noise)
+    r = model.recall(weight, chosen.sample_size, chosen.threshold, chosen.detectors, noise=noise)
     ok, msg = within_3_sigma(recalled, len(codes), r)
     assert ok, msg

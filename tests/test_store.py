@@ -30,8 +30,8 @@ def random_rows(rng, count, bits, lo, hi):
     [
         (dict(bits=0, threshold=1), ValueError, "bits=0 must be >= 1"),
         (dict(bits=8, threshold=0), ValueError, "threshold=0 must be >= 1"),
-        (dict(bits=8, threshold=3, segment=2), ValueError, "threshold=3 must be <= segment=2"),
-        (dict(bits=8, threshold=1, segment=0), ValueError, "segment=0 must be >= 1"),
+        (dict(bits=8, threshold=3, sample_size=2), ValueError, "threshold=3 must be <= sample_size=2"),
+        (dict(bits=8, threshold=1, sample_size=0), ValueError, "sample_size=0 must be >= 1"),
         (dict(bits=8, threshold=1, detectors=0), ValueError, "detectors=0 must be >= 1"),
         (dict(bits=8, threshold=9), ValueError, "threshold=9 must be <= bits=8"),
         (dict(bits=8, threshold=1, seed=-1), ValueError, "seed=-1 must be >= 0"),
@@ -115,7 +115,7 @@ def test_remove_semantics_and_messages():
 @pytest.mark.parametrize("store_class", [Store, SmallBlockStore])
 @pytest.mark.parametrize("threshold", [1, 3, 6])
 def test_full_codes_hit_exactly_at_threshold(store_class, threshold):
-    """segment=None, one detector: hits are exactly {overlap >= threshold} (naive sets)."""
+    """sample_size=None, one detector: hits are exactly {overlap >= threshold} (naive sets)."""
     rng = np.random.default_rng(threshold)
     bits = 100
     store = store_class(bits, threshold=threshold, seed=3)
@@ -134,20 +134,20 @@ def test_full_codes_hit_exactly_at_threshold(store_class, threshold):
         assert hits_as_pairs(batch[i]) == naive.query(q)
 
 
-@pytest.mark.parametrize("segment, detectors", [(3, 1), (4, 3), (6, 2)])
-def test_subsampled_detectors_follow_the_rule_exactly(segment, detectors):
+@pytest.mark.parametrize("sample_size, detectors", [(3, 1), (4, 3), (6, 2)])
+def test_subsampled_detectors_follow_the_rule_exactly(sample_size, detectors):
     """Hits equal the naive rule applied to the store's own inspectable samples."""
-    rng = np.random.default_rng(segment * 10 + detectors)
+    rng = np.random.default_rng(sample_size * 10 + detectors)
     bits, threshold = 60, 2
-    store = SmallBlockStore(bits, threshold=threshold, segment=segment, detectors=detectors, seed=11)
-    rows = random_rows(rng, 50, bits, 2, 12)  # some lighter than segment
+    store = SmallBlockStore(bits, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=11)
+    rows = random_rows(rng, 50, bits, 2, 12)  # some lighter than sample_size
     ids = store.add(rows)
     samples = [[set(s.tolist()) for s in store.detector_bits(int(i))] for i in ids]
     naive = NaiveStore(threshold)
     naive.add(rows, samples)
     for i, row in zip(ids, rows):
         sample = store.detector_bits(int(i))
-        assert sample.shape == (detectors, min(segment, len(row)))
+        assert sample.shape == (detectors, min(sample_size, len(row)))
         for s in sample:
             assert set(s.tolist()) <= set(row) and len(set(s.tolist())) == s.size
             assert np.all(np.diff(s) > 0)
@@ -160,13 +160,13 @@ def test_subsampled_detectors_follow_the_rule_exactly(segment, detectors):
 
 
 def test_samples_depend_only_on_seed_and_id():
-    codes = Codes.random(40, bits=200, active=30, seed=4)
-    whole = Store(200, threshold=2, segment=5, detectors=3, seed=99)
+    codes = Codes.random(40, bits=200, weight=30, seed=4)
+    whole = Store(200, threshold=2, sample_size=5, detectors=3, seed=99)
     whole.add(codes)
-    pieces = SmallBlockStore(200, threshold=2, segment=5, detectors=3, seed=99)
+    pieces = SmallBlockStore(200, threshold=2, sample_size=5, detectors=3, seed=99)
     for a, b in [(0, 1), (1, 17), (17, 40)]:
         pieces.add(codes[a:b])
-    other_seed = Store(200, threshold=2, segment=5, detectors=3, seed=100)
+    other_seed = Store(200, threshold=2, sample_size=5, detectors=3, seed=100)
     other_seed.add(codes)
     same = [np.array_equal(whole.detector_bits(i), pieces.detector_bits(i)) for i in range(40)]
     differ = [not np.array_equal(whole.detector_bits(i), other_seed.detector_bits(i)) for i in range(40)]
@@ -180,7 +180,7 @@ def test_samples_are_uniform_over_the_code():
     from scipy.stats import chisquare
 
     code = list(range(0, 200, 10))  # 20 bits
-    store = Store(200, threshold=1, segment=5, detectors=1, seed=1)
+    store = Store(200, threshold=1, sample_size=5, detectors=1, seed=1)
     store.add([code] * 2000)
     counts = np.zeros(200)
     for i in range(2000):
@@ -193,8 +193,8 @@ def test_samples_are_uniform_over_the_code():
 @jit_only
 def test_hits_equal_scipy_sparse_product_on_100k_codes():
     """Reference: scipy.sparse product Q @ S.T gives every overlap (general-purpose library)."""
-    bits, active, threshold, n_codes = 2048, 40, 20, 100_000
-    codes = Codes.random(n_codes, bits, active, seed=21)
+    bits, weight, threshold, n_codes = 2048, 40, 20, 100_000
+    codes = Codes.random(n_codes, bits, weight, seed=21)
     store = Store(bits, threshold=threshold, seed=5)
     store.add(codes[:60_000])
     store.add(codes[60_000:])  # a second batch: appended blocks

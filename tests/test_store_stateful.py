@@ -24,13 +24,13 @@ query_code = st.sets(st.integers(0, BITS - 1), max_size=20).map(sorted)
 class StoreMachine(RuleBasedStateMachine):
     @initialize(
         threshold=st.integers(1, 3),
-        segment=st.sampled_from([None, 3, 5]),
+        sample_size=st.sampled_from([None, 3, 5]),
         detectors=st.integers(1, 3),
         seed=st.integers(0, 2**64 - 1),
         verify_cost=st.sampled_from([0.0, 256.0, float("inf")]),  # prefix filtering: lowest, usual, off
     )
-    def start(self, threshold, segment, detectors, seed, verify_cost):
-        self.store = SmallBlockStore(BITS, threshold=threshold, segment=segment, detectors=detectors, seed=seed)
+    def start(self, threshold, sample_size, detectors, seed, verify_cost):
+        self.store = SmallBlockStore(BITS, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=seed)
         self.store._bank.verify_cost = verify_cost
         self.naive = NaiveStore(threshold)
 
@@ -97,7 +97,7 @@ def test_stress_seeded(iterations=300, seed=0):
 
 def run_stress(iterations: int, seed: int) -> None:
     rng = np.random.default_rng(seed)
-    store = SmallBlockStore(BITS, threshold=2, segment=4, detectors=2, seed=seed)
+    store = SmallBlockStore(BITS, threshold=2, sample_size=4, detectors=2, seed=seed)
     naive = NaiveStore(2)
 
     def rand_code(lo=3, hi=14):

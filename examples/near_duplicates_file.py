@@ -11,16 +11,16 @@ than a handful.
 The script reads a ``.npy`` file of codes — a 2-D integer array with one
 row of set-bit indices per code (``-1`` pads short rows), or a 2-D bool
 array with one column per bit — groups the near-copies with
-``sparseindex.dedupe``, and writes the codes it keeps (one per group, in
+``sparseindex.near_duplicates``, and writes the codes it keeps (one per group, in
 file order) and every code's label (the row of its group's first report).
 Without an input file it first writes a sample day of 20,000 reports with
 planted retries, and then checks what it found against what was planted.
 
 Run::
 
-    python examples/dedupe_file.py                          # sample data in a temporary folder
-    python examples/dedupe_file.py squalls.npy --out kept.npy --labels labels.npy
-    python examples/dedupe_file.py --reports 2000            # a smaller sample day
+    python examples/near_duplicates_file.py                          # sample data in a temporary folder
+    python examples/near_duplicates_file.py squalls.npy --out kept.npy --labels labels.npy
+    python examples/near_duplicates_file.py --reports 2000            # a smaller sample day
 """
 
 from __future__ import annotations
@@ -31,11 +31,11 @@ import tempfile
 
 import numpy as np
 
-from sparseindex import Codes, dedupe
-from sparseindex.dedupe import planted_duplicates
+from sparseindex import Codes, label_near_duplicates
+from sparseindex.near_duplicates import planted_duplicates
 
 BITS = 1024  # cells a buoy fingerprint can mark
-ACTIVE = 24  # cells per squall report
+WEIGHT = 24  # cells per squall report
 MIN_OVERLAP = 20  # shared cells that make two reports one squall
 
 
@@ -53,7 +53,7 @@ def read_codes(path: str) -> Codes:
 
 def write_sample(path: str, reports: int, seed: int):
     """A sample day: reports with 10% planted retries (0 to 4 cells changed); returns who copies whom."""
-    codes, source, changed = planted_duplicates(reports, BITS, ACTIVE, fraction=0.1, max_changed=4, seed=seed)
+    codes, source, changed = planted_duplicates(reports, BITS, WEIGHT, fraction=0.1, max_changed=4, seed=seed)
     np.save(path, np.stack(codes.to_indices()).astype(np.int32), allow_pickle=False)
     return source
 
@@ -80,7 +80,7 @@ def main(argv=None) -> None:
     print(f"read {len(codes):,} codes of {codes.bits:,} bits from {path} "
           f"({int(codes.weights.min())}..{int(codes.weights.max())} set bits)")
 
-    labels, summary = dedupe(codes, min_overlap=args.min_overlap, mode="components", seed=args.seed,
+    labels, summary = label_near_duplicates(codes, min_overlap=args.min_overlap, mode="components", seed=args.seed,
                              return_summary=True)
     keep = np.flatnonzero(labels == np.arange(len(codes)))
     print(summary)

@@ -1,7 +1,7 @@
-"""Near-duplicate detection over a batch of codes: :func:`dedupe`.
+"""Near-duplicate detection over a batch of codes: :func:`label_near_duplicates`.
 
 Two codes *match* when their full overlap (shared set bits) is at least
-``min_overlap``. :func:`dedupe` labels every code with the index of its
+``min_overlap``. :func:`label_near_duplicates` labels every code with the index of its
 group's representative:
 
 * ``mode="first"`` — codes in order; a code joins the earlier
@@ -53,7 +53,7 @@ from ._config import thread_count
 from .codes import Codes, as_codes
 from .store import Store
 
-__all__ = ["dedupe", "DedupeSummary", "TqdmProgress", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
+__all__ = ["label_near_duplicates", "NearDuplicateSummary", "TqdmProgress", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
 
 #: ``method="auto"`` keeps the exact index whenever it is predicted to take
 #: at most this long, even if banding would be faster.
@@ -64,8 +64,8 @@ _METHODS = ("auto", "banding", "index")
 
 
 @dataclass(frozen=True)
-class DedupeSummary:
-    """What :func:`dedupe` did, for reports (``str(summary)`` is a text report).
+class NearDuplicateSummary:
+    """What :func:`label_near_duplicates` did, for reports (``str(summary)`` is a text report).
 
     Attributes
     ----------
@@ -110,7 +110,7 @@ class DedupeSummary:
     Examples
     --------
     >>> rows = [[1, 2, 3, 4], [1, 2, 3, 5], [7, 8, 9, 10], [1, 2, 3, 4]]
-    >>> labels, summary = dedupe(rows, min_overlap=3, bits=16, return_summary=True)
+    >>> labels, summary = label_near_duplicates(rows, min_overlap=3, bits=16, return_summary=True)
     >>> summary.groups, summary.duplicates, summary.exact_copies, summary.method
     (2, 2, 1, 'index')
     >>> print(str(summary).splitlines()[3])
@@ -145,7 +145,7 @@ class DedupeSummary:
         Examples
         --------
         >>> import json
-        >>> _, summary = dedupe([[1, 2, 3], [1, 2, 4]], min_overlap=2, bits=8, return_summary=True)
+        >>> _, summary = label_near_duplicates([[1, 2, 3], [1, 2, 4]], min_overlap=2, bits=8, return_summary=True)
         >>> d = summary.to_dict()
         >>> d["groups"], d["matched_pairs"], json.loads(json.dumps(d))["mode"]
         (1, 1, 'first')
@@ -201,7 +201,7 @@ def _as_batch(codes, bits) -> Codes:
 
     if bits is not None:
         if isinstance(bits, (bool, np.bool_)) or not isinstance(bits, Integral) or bits < 1:
-            raise ValueError(f"dedupe: bits={bits!r} must be a positive integer")
+            raise ValueError(f"label_near_duplicates: bits={bits!r} must be a positive integer")
         bits = int(bits)
     if bits is None:
         if isinstance(codes, Codes):
@@ -214,33 +214,33 @@ def _as_batch(codes, bits) -> Codes:
             bits = len(codes[0])  # a list of bitarray
         else:
             raise TypeError(
-                f"dedupe: cannot tell the code width of a {type(codes).__name__}; pass bits=... "
+                f"label_near_duplicates: cannot tell the code width of a {type(codes).__name__}; pass bits=... "
                 "(index lists need it) or a Codes batch"
             )
-    return as_codes(codes, bits, what="dedupe")
+    return as_codes(codes, bits, what="label_near_duplicates")
 
 
 def _check_min_overlap(min_overlap, bits) -> int:
     if isinstance(min_overlap, (bool, np.bool_)) or not isinstance(min_overlap, Integral):
-        raise TypeError(f"dedupe: min_overlap={min_overlap!r} must be an integer")
+        raise TypeError(f"label_near_duplicates: min_overlap={min_overlap!r} must be an integer")
     if min_overlap < 1:
-        raise ValueError(f"dedupe: min_overlap={min_overlap} must be >= 1 (0 would merge every code)")
+        raise ValueError(f"label_near_duplicates: min_overlap={min_overlap} must be >= 1 (0 would merge every code)")
     if min_overlap > bits:
-        raise ValueError(f"dedupe: min_overlap={min_overlap} exceeds bits={bits}: no two codes could ever match")
+        raise ValueError(f"label_near_duplicates: min_overlap={min_overlap} exceeds bits={bits}: no two codes could ever match")
     return int(min_overlap)
 
 
 def _check_choice(name, value, allowed):
     if not isinstance(value, str) or value not in allowed:
-        raise ValueError(f"dedupe: {name}={value!r} must be one of {', '.join(repr(a) for a in allowed)}")
+        raise ValueError(f"label_near_duplicates: {name}={value!r} must be one of {', '.join(repr(a) for a in allowed)}")
     return value
 
 
 def _check_recall(recall) -> float:
     if isinstance(recall, (bool, np.bool_)) or not isinstance(recall, Real) or not math.isfinite(recall):
-        raise ValueError(f"dedupe: recall={recall!r} must be a number in (0, 1]")
+        raise ValueError(f"label_near_duplicates: recall={recall!r} must be a number in (0, 1]")
     if not 0.0 < recall <= 1.0:
-        raise ValueError(f"dedupe: recall={recall!r} must be in (0, 1]")
+        raise ValueError(f"label_near_duplicates: recall={recall!r} must be in (0, 1]")
     return float(recall)
 
 
@@ -250,10 +250,10 @@ def _check_bands(bands):
     try:
         b, r = bands
     except (TypeError, ValueError):
-        raise ValueError(f"dedupe: bands={bands!r} must be a pair (bands, rows) of positive integers") from None
+        raise ValueError(f"label_near_duplicates: bands={bands!r} must be a pair (bands, rows) of positive integers") from None
     for name, v in (("bands", b), ("rows", r)):
         if isinstance(v, (bool, np.bool_)) or not isinstance(v, Integral) or v < 1:
-            raise ValueError(f"dedupe: bands={bands!r}: {name}={v!r} must be a positive integer")
+            raise ValueError(f"label_near_duplicates: bands={bands!r}: {name}={v!r} must be a positive integer")
     return int(b), int(r)
 
 
@@ -261,9 +261,9 @@ def _check_seed(seed) -> int:
     if seed is None:
         return int(np.random.SeedSequence().generate_state(1, dtype=np.uint64)[0])
     if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, Integral):
-        raise TypeError(f"dedupe: seed={seed!r} must be an integer or None")
+        raise TypeError(f"label_near_duplicates: seed={seed!r} must be an integer or None")
     if not 0 <= seed < 2**64:
-        raise ValueError(f"dedupe: seed={seed} must be in 0..2**64-1")
+        raise ValueError(f"label_near_duplicates: seed={seed} must be in 0..2**64-1")
     return int(seed)
 
 
@@ -275,7 +275,7 @@ def _progress_callback(progress):
         return bar, bar.close
     if callable(progress):
         return progress, None
-    raise TypeError(f"dedupe: progress={progress!r} must be True, False or a callable (stage, done, total)")
+    raise TypeError(f"label_near_duplicates: progress={progress!r} must be True, False or a callable (stage, done, total)")
 
 
 class TqdmProgress:
@@ -348,7 +348,7 @@ def _distinct(words, weights, min_overlap):
 def _index_pairs(codes_u: Codes, min_overlap, progress):
     """Every matching pair of distinct codes through the exact detector index."""
     n = len(codes_u)
-    store = Store(codes_u.bits, threshold=min_overlap, segment=None, detectors=1, seed=0)
+    store = Store(codes_u.bits, threshold=min_overlap, sample_size=None, detectors=1, seed=0)
     chunk = int(min(1 << 15, max(1 << 10, n // 64 + 1)))
     lo_parts, hi_parts, ov_parts = [], [], []
     hits_total = 0
@@ -401,7 +401,7 @@ def _choose(method, recall, bands, words_u, weights_u, bits, min_overlap, seed):
     if u < 2:  # banding requested, nothing to pair
         return "banding", "requested", _banding.BandChoice(1, 1, 0.0, 1.0, 0.0, 0.0), predicted, worst
     if recall >= 1.0:
-        raise ValueError("dedupe: recall=1 cannot be promised by banding; use method='index' or recall < 1")
+        raise ValueError("label_near_duplicates: recall=1 cannot be promised by banding; use method='index' or recall < 1")
     moments = _banding.similarity_moments(words_u, weights_u, seed=seed)
     choice = _banding.choose_bands(worst, recall, codes=u, set_bits=float(weights_u.sum()), moments=moments,
                                    threads=threads)
@@ -410,7 +410,7 @@ def _choose(method, recall, bands, words_u, weights_u, bits, min_overlap, seed):
     if method == "banding":
         if choice is None:
             raise ValueError(
-                f"dedupe: no banding within {_banding.MAX_HASHES} min-hashes per code reaches recall={recall} "
+                f"label_near_duplicates: no banding within {_banding.MAX_HASHES} min-hashes per code reaches recall={recall} "
                 f"at the hardest pair's Jaccard {worst:.4g} (min_overlap={min_overlap}, heaviest codes "
                 f"{int(heaviest[1])} and {int(heaviest[0])} set bits); use method='index' or a lower recall"
             )
@@ -455,7 +455,7 @@ def _labels(mode, uid, first, weights_u, lo, hi, ov):
 # ---------------------------------------------------------------------------
 
 
-def dedupe(
+def label_near_duplicates(
     codes,
     *,
     min_overlap,
@@ -504,14 +504,14 @@ def dedupe(
         True draws tqdm bars on stderr; a callable is called as
         ``progress(stage, done, total)``.
     return_summary : bool
-        Also return a :class:`DedupeSummary`.
+        Also return a :class:`NearDuplicateSummary`.
 
     Returns
     -------
     labels : ndarray of int64
         ``labels[i]`` is the representative's index; ``labels[i] == i``
         for representatives (and for codes lighter than ``min_overlap``).
-    summary : DedupeSummary
+    summary : NearDuplicateSummary
         Only with ``return_summary=True``.
 
     Notes
@@ -531,9 +531,9 @@ def dedupe(
     --------
     >>> import sparseindex
     >>> rows = [[1, 2, 3, 4], [1, 2, 3, 5], [7, 8, 9, 10], [1, 2, 3, 4]]
-    >>> sparseindex.dedupe(rows, min_overlap=3, bits=16).tolist()
+    >>> sparseindex.label_near_duplicates(rows, min_overlap=3, bits=16).tolist()
     [0, 0, 2, 0]
-    >>> labels, summary = sparseindex.dedupe(rows, min_overlap=3, bits=16, mode="components",
+    >>> labels, summary = sparseindex.label_near_duplicates(rows, min_overlap=3, bits=16, mode="components",
     ...                                      return_summary=True)
     >>> summary.groups, summary.duplicates, summary.largest_group, summary.method
     (2, 2, 3, 'index')
@@ -546,9 +546,9 @@ def dedupe(
     recall = _check_recall(recall)
     bands = _check_bands(bands)
     if bands is not None and method == "index":
-        raise ValueError(f"dedupe: bands={bands!r} goes with method='banding', not method='index'")
+        raise ValueError(f"label_near_duplicates: bands={bands!r} goes with method='banding', not method='index'")
     if not isinstance(return_summary, (bool, np.bool_)):
-        raise TypeError(f"dedupe: return_summary={return_summary!r} must be True or False")
+        raise TypeError(f"label_near_duplicates: return_summary={return_summary!r} must be True or False")
     seed = _check_seed(seed)
     callback, finish = _progress_callback(progress)
     try:
@@ -586,7 +586,7 @@ def dedupe(
     sizes = np.bincount(labels, minlength=n) if n else np.zeros(0, dtype=np.int64)
     groups = int(np.count_nonzero(sizes))
     seconds["total"] = time.perf_counter() - t_start
-    summary = DedupeSummary(
+    summary = NearDuplicateSummary(
         codes=n,
         bits=batch.bits,
         min_overlap=min_overlap,
@@ -617,16 +617,16 @@ def dedupe(
 # ---------------------------------------------------------------------------
 
 
-def planted_duplicates(count, bits, active, *, fraction=0.1, max_changed=8, chain=0.0, seed=0):
+def planted_duplicates(count, bits, weight, *, fraction=0.1, max_changed=8, chain=0.0, seed=0):
     """Random codes with planted near-duplicates, in shuffled order (for tests, demos, benchmarks).
 
     ``round(fraction * count)`` of the ``count`` codes are near-duplicates:
-    each copies a *source* and swaps ``k`` of its ``active`` bits for ``k``
+    each copies a *source* and swaps ``k`` of its ``weight`` bits for ``k``
     bits outside it, ``k`` uniform in ``0..max_changed``, so it overlaps its
-    source by ``active - k``. Sources are the random codes; with chance
+    source by ``weight - k``. Sources are the random codes; with chance
     ``chain`` a source is an earlier near-duplicate instead, making chains
     whose ends may overlap by less than any link. The rest are uniform
-    random codes of ``active`` bits (``Codes.random``). Vectorised: about a
+    random codes of ``weight`` bits (``Codes.random``). Vectorised: about a
     second per million codes.
 
     Returns ``(codes, source, changed)``: ``source[i]`` is the index of the
@@ -642,12 +642,12 @@ def planted_duplicates(count, bits, active, *, fraction=0.1, max_changed=8, chai
     rng = np.random.default_rng(seed)
     n_dup = int(round(fraction * count))
     n_orig = count - n_dup
-    if not 0 <= max_changed <= min(active, bits - active):
-        raise ValueError(f"max_changed={max_changed} must be in 0..min(active, bits - active)")
-    base = Codes.random(n_orig, bits, active, seed=int(rng.integers(2**63)))
-    rows = np.zeros((count, active), dtype=np.int64)
-    if n_orig and active:
-        rows[:n_orig] = _kernels_unpack(base).reshape(n_orig, active)
+    if not 0 <= max_changed <= min(weight, bits - weight):
+        raise ValueError(f"max_changed={max_changed} must be in 0..min(weight, bits - weight)")
+    base = Codes.random(n_orig, bits, weight, seed=int(rng.integers(2**63)))
+    rows = np.zeros((count, weight), dtype=np.int64)
+    if n_orig and weight:
+        rows[:n_orig] = _kernels_unpack(base).reshape(n_orig, weight)
     src = np.full(count, -1, dtype=np.int64)
     changed = np.zeros(count, dtype=np.int64)
     dups = np.arange(n_orig, count)
@@ -680,7 +680,7 @@ def _kernels_unpack(codes: Codes) -> np.ndarray:
 
 def _near_copies(sources, k, bits, rng):
     """Each row of ``sources`` with ``k[row]`` of its bits swapped for bits outside it."""
-    n, active = sources.shape
+    n, weight = sources.shape
     out = sources.copy()
     todo = np.flatnonzero(k > 0)
     while todo.size:
@@ -697,9 +697,9 @@ def _near_copies(sources, k, bits, rng):
         done = take.sum(axis=1) == kk
         rows_done = todo[done]
         # which of the source's bits are swapped: the k of lowest random rank
-        order = np.argsort(rng.random((rows_done.size, active)), axis=1)
-        swap = np.zeros((rows_done.size, active), dtype=bool)
-        np.put_along_axis(swap, order, np.arange(active)[None, :] < kk[done][:, None], axis=1)
+        order = np.argsort(rng.random((rows_done.size, weight)), axis=1)
+        swap = np.zeros((rows_done.size, weight), dtype=bool)
+        np.put_along_axis(swap, order, np.arange(weight)[None, :] < kk[done][:, None], axis=1)
         replaced = s[done].copy()
         replaced[swap] = fresh[done][take[done]]
         out[rows_done] = replaced

@@ -1,4 +1,4 @@
-"""The ``sparseindex dedupe`` subcommand: label the near-duplicates in a file of codes.
+"""The ``sparseindex near-duplicates`` subcommand: label the near-duplicates in a file of codes.
 
 Input files (never unpickled):
 
@@ -14,7 +14,7 @@ Input files (never unpickled):
 
 ``add_parser(subparsers)`` registers the subcommand; ``run(args)`` carries it
 out and returns the exit status: 0, or 2 with one line on stderr for bad
-input (missing file, wrong dtype or shape, out-of-range or repeated
+input (missing file, wrong dtype or shape, indices outside the width or repeated
 indices, a bad option value).
 """
 
@@ -29,7 +29,7 @@ import numpy as np
 
 from ._cli_plan import _count, _number
 from .codes import Codes
-from .dedupe import TqdmProgress, dedupe
+from .near_duplicates import TqdmProgress, label_near_duplicates
 
 __all__ = ["add_parser", "run", "load_codes", "InputError"]
 
@@ -42,14 +42,14 @@ class InputError(ValueError):
     >>> load_codes("missing.npy")
     Traceback (most recent call last):
     ...
-    sparseindex._cli_dedupe.InputError: missing.npy: no such file
+    sparseindex._cli_near_duplicates.InputError: missing.npy: no such file
     >>> issubclass(InputError, ValueError)
     True
     """
 
 
 def add_parser(subparsers):
-    """Register ``dedupe`` on an argparse sub-parser collection; return it.
+    """Register ``label_near_duplicates`` on an argparse sub-parser collection; return it.
 
     Examples
     --------
@@ -60,7 +60,7 @@ def add_parser(subparsers):
     ('codes.npy', 32, 'first', 'auto', None)
     """
     p = subparsers.add_parser(
-        "dedupe",
+        "near-duplicates",
         help="label near-duplicate codes in a .npy or .npz file",
         description=(
             "Group the codes of INPUT whose full overlap (shared set bits) is at least "
@@ -133,7 +133,7 @@ def load_codes(path, bits=None) -> Codes:
     >>> load_codes(path, bits=8)
     Traceback (most recent call last):
     ...
-    sparseindex._cli_dedupe.InputError: ...codes.npy: row 2: bit index 8 is out of range for bits=8 (valid 0..7)
+    sparseindex._cli_near_duplicates.InputError: ...codes.npy: row 2: bit index 8 is out of range for bits=8 (valid 0..7)
     """
     if not os.path.exists(path):
         raise InputError(f"{path}: no such file")
@@ -211,7 +211,7 @@ def _save_labels(out, labels):
 
 
 def run(args):
-    """Carry out ``sparseindex dedupe``; return the exit status.
+    """Carry out ``sparseindex near-duplicates``; return the exit status.
 
     Examples
     --------
@@ -233,11 +233,11 @@ def run(args):
     try:
         out = _check_out(args.out)
         codes = load_codes(args.input, args.bits)
-        labels, summary = dedupe(codes, min_overlap=args.min_overlap, mode=args.mode, method=args.method,
+        labels, summary = label_near_duplicates(codes, min_overlap=args.min_overlap, mode=args.mode, method=args.method,
                                  recall=args.recall, seed=args.seed, progress=bar or False, return_summary=True)
     except (InputError, ValueError, TypeError) as exc:
         message = " ".join(str(exc).split())
-        print(f"sparseindex dedupe: {message}", file=sys.stderr)
+        print(f"sparseindex near-duplicates: {message}", file=sys.stderr)
         return 2
     finally:
         if bar is not None:
@@ -249,7 +249,7 @@ def run(args):
         record.update(input=args.input, out=out)
         print(json.dumps(record, indent=2))
     else:
-        print(f"sparseindex dedupe: {args.input}")
+        print(f"sparseindex near-duplicates: {args.input}")
         print(str(summary))
         if out is not None:
             print(f"  labels: {out} ({labels.shape[0]:,} int64, label = index of the group's representative)")

@@ -1,4 +1,4 @@
-"""dedupe: labels against references outside the library.
+"""label_near_duplicates: labels against references outside the library.
 
 * Brute-force all-pairs overlaps from a **scipy.sparse product** on 20,000
   codes with planted near-duplicate groups (chains included);
@@ -21,8 +21,8 @@ from hypothesis import strategies as st
 from scipy.sparse.csgraph import connected_components
 
 import sparseindex
-from sparseindex import Codes, DedupeSummary, _banding, dedupe
-from sparseindex.dedupe import EXACT_BUDGET_SECONDS, planted_duplicates
+from sparseindex import Codes, NearDuplicateSummary, _banding, label_near_duplicates
+from sparseindex.near_duplicates import EXACT_BUDGET_SECONDS, planted_duplicates
 
 # ---------------------------------------------------------------------------
 # references
@@ -91,13 +91,13 @@ def same_partition(a, b) -> bool:
 # 20,000 codes with planted groups, against scipy.sparse brute force
 # ---------------------------------------------------------------------------
 
-N_PLANTED, BITS, ACTIVE, MIN_OVERLAP = 20_000, 4096, 32, 24
+N_PLANTED, BITS, WEIGHT, MIN_OVERLAP = 20_000, 4096, 32, 24
 
 
 @pytest.fixture(scope="module")
 def planted():
     codes, source, changed = planted_duplicates(
-        N_PLANTED, BITS, ACTIVE, fraction=0.15, max_changed=ACTIVE - MIN_OVERLAP, chain=0.3, seed=2024)
+        N_PLANTED, BITS, WEIGHT, fraction=0.15, max_changed=WEIGHT - MIN_OVERLAP, chain=0.3, seed=2024)
     lo, hi, ov = exact_pairs(codes, MIN_OVERLAP)
     return codes, source, changed, (lo, hi, ov)
 
@@ -105,11 +105,11 @@ def planted():
 def test_planted_data_has_what_the_checks_need(planted):
     codes, source, changed, (lo, hi, ov) = planted
     assert len(codes) == N_PLANTED and int((source >= 0).sum()) == 3000
-    # every planted copy overlaps its source by ACTIVE - changed (scipy product reference)
+    # every planted copy overlaps its source by WEIGHT - changed (scipy product reference)
     dup = np.flatnonzero(source >= 0)
     pairs = {(min(a, b), max(a, b)): z for a, b, z in zip(lo.tolist(), hi.tolist(), ov.tolist())}
-    assert all(pairs.get((min(i, s), max(i, s))) == ACTIVE - k
-               for i, s, k in zip(dup.tolist(), source[dup].tolist(), changed[dup].tolist()) if k < ACTIVE)
+    assert all(pairs.get((min(i, s), max(i, s))) == WEIGHT - k
+               for i, s, k in zip(dup.tolist(), source[dup].tolist(), changed[dup].tolist()) if k < WEIGHT)
     # chains make components differ from first representatives, and exact copies exist
     assert reference_components(N_PLANTED, lo, hi).tolist() != naive_first(N_PLANTED, lo, hi, ov).tolist()
     assert int((changed[dup] == 0).sum()) > 100
@@ -117,7 +117,7 @@ def test_planted_data_has_what_the_checks_need(planted):
 
 def test_components_equal_scipy_connected_components(planted):
     codes, _, _, (lo, hi, ov) = planted
-    labels, summary = dedupe(codes, min_overlap=MIN_OVERLAP, mode="components", method="index",
+    labels, summary = label_near_duplicates(codes, min_overlap=MIN_OVERLAP, mode="components", method="index",
                              return_summary=True)
     want = reference_components(N_PLANTED, lo, hi)
     assert np.array_equal(labels, want)
@@ -130,7 +130,7 @@ def test_components_equal_scipy_connected_components(planted):
 
 def test_first_equals_naive_greedy_loop(planted):
     codes, _, _, (lo, hi, ov) = planted
-    labels = dedupe(codes, min_overlap=MIN_OVERLAP, mode="first", method="index")
+    labels = label_near_duplicates(codes, min_overlap=MIN_OVERLAP, mode="first", method="index")
     assert np.array_equal(labels, naive_first(N_PLANTED, lo, hi, ov))
 
 
@@ -138,7 +138,7 @@ def test_banding_at_tiny_miss_rate_equals_the_exact_answer(planted):
     codes, _, _, (lo, hi, ov) = planted
     for mode, want in (("components", reference_components(N_PLANTED, lo, hi)),
                        ("first", naive_first(N_PLANTED, lo, hi, ov))):
-        labels, summary = dedupe(codes, min_overlap=MIN_OVERLAP, mode=mode, method="banding",
+        labels, summary = label_near_duplicates(codes, min_overlap=MIN_OVERLAP, mode=mode, method="banding",
                                  recall=1 - 1e-9, seed=7, return_summary=True)
         assert summary.method == "banding" and summary.predicted_recall >= 1 - 1e-9
         assert np.array_equal(labels, want), mode
@@ -148,7 +148,7 @@ def test_banding_first_is_the_greedy_rule_over_the_pairs_it_verified(planted):
     # a weak banding misses pairs; what it returns must still be the greedy
     # rule applied to exactly the verified pairs (naive loop as reference)
     codes, _, _, (lo, hi, ov) = planted
-    labels, summary = dedupe(codes, min_overlap=MIN_OVERLAP, mode="first", bands=(3, 4), seed=5,
+    labels, summary = label_near_duplicates(codes, min_overlap=MIN_OVERLAP, mode="first", bands=(3, 4), seed=5,
                              return_summary=True)
     # rebuild the verified pairs: banding runs on distinct codes (first copies), copies join their first
     _, first, inverse = np.unique(codes.words, axis=0, return_index=True, return_inverse=True)
@@ -170,14 +170,14 @@ def test_banding_first_is_the_greedy_rule_over_the_pairs_it_verified(planted):
 
 def test_banding_default_recall_finds_the_planted_duplicates(planted):
     codes, source, _, (lo, hi, ov) = planted
-    labels, summary = dedupe(codes, min_overlap=MIN_OVERLAP, mode="components", method="banding", seed=3,
+    labels, summary = label_near_duplicates(codes, min_overlap=MIN_OVERLAP, mode="components", method="banding", seed=3,
                              return_summary=True)
     exact = reference_components(N_PLANTED, lo, hi)
     # precision 1: every banding group lies inside one exact group
     assert np.array_equal(exact[labels], exact)
     dup = np.flatnonzero(source >= 0)
     assert np.mean(labels[dup] == labels[source[dup]]) >= 0.99
-    assert summary.worst_jaccard == pytest.approx(MIN_OVERLAP / (2 * ACTIVE - MIN_OVERLAP))
+    assert summary.worst_jaccard == pytest.approx(MIN_OVERLAP / (2 * WEIGHT - MIN_OVERLAP))
     assert summary.predicted_recall == pytest.approx(
         _banding.s_curve(summary.worst_jaccard, summary.bands, summary.rows))
 
@@ -192,7 +192,7 @@ def test_measured_recall_at_the_hardest_pairs_within_3_sigma_of_the_prediction()
         pick = rng.choice(8192, size=2 * w - m, replace=False)
         rows += [pick[:w], np.concatenate([pick[:m], pick[w:]])]
     codes = Codes.from_indices(rows, 8192)
-    labels, summary = dedupe(codes, min_overlap=m, mode="components", method="banding", seed=8,
+    labels, summary = label_near_duplicates(codes, min_overlap=m, mode="components", method="banding", seed=8,
                              return_summary=True)
     found = int(np.sum(labels[0::2] == labels[1::2]))
     p = summary.predicted_recall
@@ -206,30 +206,30 @@ def test_measured_recall_at_the_hardest_pairs_within_3_sigma_of_the_prediction()
 
 
 def test_auto_picks_index_when_small_and_banding_when_large_at_high_threshold():
-    small = Codes.random(2000, bits=2048, active=40, seed=1)
-    _, s = dedupe(small, min_overlap=32, return_summary=True, seed=1)
+    small = Codes.random(2000, bits=2048, weight=40, seed=1)
+    _, s = label_near_duplicates(small, min_overlap=32, return_summary=True, seed=1)
     assert s.method == "index" and "exact budget" in s.reason
     assert s.predicted_seconds["index"] <= EXACT_BUDGET_SECONDS
-    large = Codes.random(60_000, bits=2048, active=40, seed=2)
-    _, s = dedupe(large, min_overlap=32, return_summary=True, seed=1)
+    large = Codes.random(60_000, bits=2048, weight=40, seed=2)
+    _, s = label_near_duplicates(large, min_overlap=32, return_summary=True, seed=1)
     assert s.method == "banding" and "banding predicted" in s.reason
     assert s.predicted_seconds["banding"] < s.predicted_seconds["index"]
     assert s.predicted_recall >= 0.99 and s.bands * s.rows <= _banding.MAX_HASHES
 
 
 def test_auto_picks_index_at_a_low_threshold():
-    codes = Codes.random(3000, bits=2048, active=40, seed=3)
-    _, s = dedupe(codes, min_overlap=4, recall=0.9999, return_summary=True, seed=1)
+    codes = Codes.random(3000, bits=2048, weight=40, seed=3)
+    _, s = label_near_duplicates(codes, min_overlap=4, recall=0.9999, return_summary=True, seed=1)
     assert s.method == "index" and s.worst_jaccard == pytest.approx(4 / 76)
-    _, s = dedupe(codes, min_overlap=4, recall=1.0, return_summary=True)
+    _, s = label_near_duplicates(codes, min_overlap=4, recall=1.0, return_summary=True)
     assert s.method == "index" and "recall=1" in s.reason
 
 
 def test_many_exact_copies_cost_nothing_quadratic():
-    base = Codes.random(500, bits=1024, active=30, seed=4)
+    base = Codes.random(500, bits=1024, weight=30, seed=4)
     codes = Codes.concat([base, base[np.zeros(4000, dtype=np.int64)], base[:3]])
     for method in ("banding", "index"):
-        labels, s = dedupe(codes, min_overlap=20, mode="first", method=method, return_summary=True, seed=2)
+        labels, s = label_near_duplicates(codes, min_overlap=20, mode="first", method=method, return_summary=True, seed=2)
         assert np.all(labels[500:4500] == 0) and np.array_equal(labels[4500:], [0, 1, 2])
         assert s.exact_copies == 4003 and s.distinct_codes == 500 and s.largest_group == 4002
         assert s.candidates_verified < 100_000  # verifying the 4001 copies pairwise would be 8e6 pairs
@@ -238,7 +238,7 @@ def test_many_exact_copies_cost_nothing_quadratic():
 def test_codes_lighter_than_min_overlap_stay_alone_even_when_identical():
     rows = [[1, 2], [1, 2], [1, 2, 3, 4], [1, 2, 3, 4], [5]]
     for mode in ("first", "components"):
-        labels, s = dedupe(rows, min_overlap=3, bits=8, mode=mode, return_summary=True)
+        labels, s = label_near_duplicates(rows, min_overlap=3, bits=8, mode=mode, return_summary=True)
         assert labels.tolist() == [0, 1, 2, 2, 4]
         assert s.light_codes == 3 and s.exact_copies == 1
 
@@ -246,18 +246,18 @@ def test_codes_lighter_than_min_overlap_stay_alone_even_when_identical():
 def test_first_prefers_greatest_overlap_then_smallest_index():
     rows = [[0, 1, 2, 3], [10, 11, 12, 13], [0, 1, 2, 10, 11, 12, 13], [0, 1, 2, 3, 10]]
     # code 2 overlaps 0 by 3 and 1 by 4 -> joins 1; code 3 overlaps 0 by 4, 1 by 1
-    assert dedupe(rows, min_overlap=3, bits=16).tolist() == [0, 1, 1, 0]
+    assert label_near_duplicates(rows, min_overlap=3, bits=16).tolist() == [0, 1, 1, 0]
     # code 2 ties 0 and 1 at 2 -> smallest index
     rows = [[0, 1, 9], [5, 6, 8], [0, 1, 5, 6]]
-    assert dedupe(rows, min_overlap=2, bits=16).tolist() == [0, 1, 0]
+    assert label_near_duplicates(rows, min_overlap=2, bits=16).tolist() == [0, 1, 0]
     # components join them all through code 2
-    assert dedupe(rows, min_overlap=2, bits=16, mode="components").tolist() == [0, 0, 0]
+    assert label_near_duplicates(rows, min_overlap=2, bits=16, mode="components").tolist() == [0, 0, 0]
 
 
 def test_summary_report_and_dict():
     codes, _, _ = planted_duplicates(3000, 1024, 30, fraction=0.2, seed=5)
-    labels, s = dedupe(codes, min_overlap=24, method="banding", seed=9, return_summary=True)
-    assert isinstance(s, DedupeSummary)
+    labels, s = label_near_duplicates(codes, min_overlap=24, method="banding", seed=9, return_summary=True)
+    assert isinstance(s, NearDuplicateSummary)
     text = str(s)
     for needle in ("3,000 codes", "method: banding", f"bands: {s.bands} of {s.rows} rows", "seed 9",
                    f"groups: {s.groups:,}", "largest group", "candidates verified"):
@@ -268,44 +268,44 @@ def test_summary_report_and_dict():
 
 def test_inputs_of_every_form_give_the_same_labels():
     codes, _, _ = planted_duplicates(400, 128, 12, fraction=0.3, max_changed=3, seed=6)
-    want = dedupe(codes, min_overlap=9)
-    assert np.array_equal(dedupe(codes.to_dense(), min_overlap=9), want)
-    assert np.array_equal(dedupe(codes.to_scipy(), min_overlap=9), want)
-    assert np.array_equal(dedupe([r.tolist() for r in codes], min_overlap=9, bits=128), want)
-    assert np.array_equal(dedupe(codes.to_bitarrays(), min_overlap=9), want)
+    want = label_near_duplicates(codes, min_overlap=9)
+    assert np.array_equal(label_near_duplicates(codes.to_dense(), min_overlap=9), want)
+    assert np.array_equal(label_near_duplicates(codes.to_scipy(), min_overlap=9), want)
+    assert np.array_equal(label_near_duplicates([r.tolist() for r in codes], min_overlap=9, bits=128), want)
+    assert np.array_equal(label_near_duplicates(codes.to_bitarrays(), min_overlap=9), want)
 
 
 def test_empty_and_single_batches():
-    labels, s = dedupe(Codes.from_indices([], bits=16), min_overlap=2, return_summary=True)
+    labels, s = label_near_duplicates(Codes.from_indices([], bits=16), min_overlap=2, return_summary=True)
     assert labels.shape == (0,) and s.groups == 0 and s.largest_group == 0
     for method in ("auto", "banding", "index"):
-        labels, s = dedupe([[1, 2, 3]], min_overlap=2, bits=16, method=method, return_summary=True)
+        labels, s = label_near_duplicates([[1, 2, 3]], min_overlap=2, bits=16, method=method, return_summary=True)
         assert labels.tolist() == [0] and s.groups == 1 and s.worst_jaccard is None
         assert "1 code of 16 bits" in str(s)
 
 
 def test_progress_callable_hears_each_stage():
-    codes = Codes.random(3000, bits=512, active=20, seed=7)
+    codes = Codes.random(3000, bits=512, weight=20, seed=7)
     heard = []
-    dedupe(codes, min_overlap=15, method="banding", bands=(4, 2), seed=1,
+    label_near_duplicates(codes, min_overlap=15, method="banding", bands=(4, 2), seed=1,
            progress=lambda stage, done, total: heard.append((stage, done, total)))
     stages = [h[0] for h in heard]
     assert stages[0] == "signatures" and stages[-1] == "bands"
     assert heard[-1] == ("bands", 4, 4) and all(0 < d <= t for _, d, t in heard)
     heard.clear()
-    dedupe(codes, min_overlap=15, method="index", progress=lambda *a: heard.append(a))
+    label_near_duplicates(codes, min_overlap=15, method="index", progress=lambda *a: heard.append(a))
     assert heard[-1] == ("index", 3000, 3000)
 
 
 def test_progress_bars_go_to_stderr(capsys):
-    from sparseindex.dedupe import TqdmProgress
+    from sparseindex.near_duplicates import TqdmProgress
 
-    codes = Codes.random(2000, bits=512, active=20, seed=8)
-    want = dedupe(codes, min_overlap=15, method="index")
-    assert np.array_equal(dedupe(codes, min_overlap=15, method="index", progress=True), want)
+    codes = Codes.random(2000, bits=512, weight=20, seed=8)
+    want = label_near_duplicates(codes, min_overlap=15, method="index")
+    assert np.array_equal(label_near_duplicates(codes, min_overlap=15, method="index", progress=True), want)
     assert capsys.readouterr().out == ""
     bar = TqdmProgress(delay=0.0)  # no delay: the bar shows however short the run
-    dedupe(codes, min_overlap=15, method="banding", bands=(2, 2), seed=1, progress=bar)
+    label_near_duplicates(codes, min_overlap=15, method="banding", bands=(2, 2), seed=1, progress=bar)
     bar.close()
     err = capsys.readouterr().err
     assert "signatures" in err and "bands" in err
@@ -333,30 +333,30 @@ def test_progress_bars_go_to_stderr(capsys):
     (dict(min_overlap=3, method="banding", recall=1.0), ValueError, r"recall=1 cannot be promised by banding"),
 ])
 def test_bad_arguments_raise_quoting_the_value(kwargs, error, message):
-    codes = Codes.random(50, bits=64, active=12, seed=1)
+    codes = Codes.random(50, bits=64, weight=12, seed=1)
     with pytest.raises(error, match=message):
-        dedupe(codes, **kwargs)
+        label_near_duplicates(codes, **kwargs)
 
 
 def test_banding_out_of_reach_says_so():
     # hardest pair: overlap 1 between two 30-bit codes, Jaccard 1/59; recall 1 - 1e-9 needs 1,212 bands
-    codes = Codes.random(50, bits=64, active=30, seed=1)
+    codes = Codes.random(50, bits=64, weight=30, seed=1)
     with pytest.raises(ValueError, match=r"no banding within 1024 min-hashes per code reaches recall=0.999999999 "
                                          r"at the hardest pair's Jaccard 0.01695"):
-        dedupe(codes, min_overlap=1, method="banding", recall=1 - 1e-9)
-    _, s = dedupe(codes, min_overlap=1, recall=1 - 1e-9, return_summary=True)
+        label_near_duplicates(codes, min_overlap=1, method="banding", recall=1 - 1e-9)
+    _, s = label_near_duplicates(codes, min_overlap=1, recall=1 - 1e-9, return_summary=True)
     assert s.method == "index" and "no banding within 1024" in s.reason
 
 
 def test_bad_inputs_name_the_row_or_the_form():
     with pytest.raises(TypeError, match=r"cannot tell the code width of a list; pass bits="):
-        dedupe([[1, 2]], min_overlap=1)
+        label_near_duplicates([[1, 2]], min_overlap=1)
     with pytest.raises(TypeError, match=r"integer matrices are ambiguous"):
-        dedupe(np.array([[1, 2]]), min_overlap=1, bits=8)
+        label_near_duplicates(np.array([[1, 2]]), min_overlap=1, bits=8)
     with pytest.raises(ValueError, match=r"row 1: bit index 9 is out of range for bits=8"):
-        dedupe([[1, 2], [3, 9]], min_overlap=1, bits=8)
+        label_near_duplicates([[1, 2], [3, 9]], min_overlap=1, bits=8)
     with pytest.raises(ValueError, match=r"bits=0 must be a positive integer"):
-        dedupe([[1]], min_overlap=1, bits=0)
+        label_near_duplicates([[1]], min_overlap=1, bits=0)
 
 
 # ---------------------------------------------------------------------------
@@ -384,9 +384,9 @@ def small_batches(draw):
 @given(small_batches(), st.sampled_from(["first", "components"]))
 def test_deduping_the_representatives_again_merges_nothing(batch, mode):
     codes, m, _ = batch
-    labels = dedupe(codes, min_overlap=m, mode=mode, method="index")
+    labels = label_near_duplicates(codes, min_overlap=m, mode=mode, method="index")
     reps = np.unique(labels)
-    again = dedupe(codes[reps], min_overlap=m, mode=mode, method="index")
+    again = label_near_duplicates(codes[reps], min_overlap=m, mode=mode, method="index")
     assert np.array_equal(again, np.arange(reps.shape[0]))
 
 
@@ -398,8 +398,8 @@ def test_components_are_invariant_under_permutation(batch, rnd, method):
     kw = dict(min_overlap=m, mode="components", method=method, seed=seed)
     if method == "banding":
         kw["bands"] = (4, 2)  # fixed bands: candidates depend on content and seed only
-    labels = dedupe(codes, **kw)
-    permuted = dedupe(codes[perm], **kw)
+    labels = label_near_duplicates(codes, **kw)
+    permuted = label_near_duplicates(codes[perm], **kw)
     assert same_partition(labels[perm], permuted)
     # labels are the smallest index of each component
     assert np.all(permuted <= np.arange(len(codes)))
@@ -412,14 +412,14 @@ def test_every_reported_match_is_exact(batch, method):
     # reference: overlaps from Python sets (first) and the scipy.sparse product (components)
     codes, m, seed = batch
     n = len(codes)
-    first = dedupe(codes, min_overlap=m, mode="first", method=method, seed=seed, bands=(3, 2) if method == "banding"
+    first = label_near_duplicates(codes, min_overlap=m, mode="first", method=method, seed=seed, bands=(3, 2) if method == "banding"
                    else None)
     for i in range(n):
         r = int(first[i])
         assert r <= i and first[r] == r
         if r != i:
             assert overlap(codes, i, r) >= m
-    comp = dedupe(codes, min_overlap=m, mode="components", method=method, seed=seed,
+    comp = label_near_duplicates(codes, min_overlap=m, mode="components", method=method, seed=seed,
                   bands=(3, 2) if method == "banding" else None)
     lo, hi, _ = exact_pairs(codes, m)
     exact = reference_components(n, lo, hi) if n else comp

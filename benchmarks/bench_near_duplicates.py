@@ -1,12 +1,12 @@
-"""Near-duplicate benchmark: ``sparseindex.dedupe`` over a size ladder, beside a brute-force peer.
+"""Near-duplicate benchmark: ``sparseindex.near_duplicates`` over a size ladder, beside a brute-force peer.
 
 At each size N the data are random codes (2048 bits, 40 set bits) of which
 10% are planted near-duplicates: a copy of a random code with ``k`` of its
 bits swapped for others, ``k`` uniform in 0..8, so it overlaps its source by
-at least 32 (``sparseindex.dedupe.planted_duplicates``). With
+at least 32 (``sparseindex.near_duplicates.planted_duplicates``). With
 ``min_overlap=32`` the script times
 
-* ``dedupe(mode="components", method="auto")`` (banding at these sizes) and
+* ``label_near_duplicates(mode="components", method="auto")`` (banding at these sizes) and
   ``mode="first"`` on the same data;
 * the exact index, ``method="index"``, up to ``--index-max`` codes;
 * the peer: brute-force all-pairs overlaps with a scipy.sparse product
@@ -25,8 +25,8 @@ the peer's. It exits non-zero when a check fails.
 
 Run from the project root::
 
-    PYTHONPATH=. python benchmarks/bench_dedupe.py --out benchmarks/results_dedupe.md
-    PYTHONPATH=. python benchmarks/bench_dedupe.py --quick          # CI smoke run, seconds
+    PYTHONPATH=. python benchmarks/bench_near_duplicates.py --out benchmarks/results_near_duplicates.md
+    PYTHONPATH=. python benchmarks/bench_near_duplicates.py --quick          # CI smoke run, seconds
 """
 
 from __future__ import annotations
@@ -43,24 +43,24 @@ import numpy as np
 if __package__ in (None, ""):
     sys.path.insert(0, os.path.dirname(os.path.abspath(__file__)))
     import _common as common
-else:  # imported as benchmarks.bench_dedupe
+else:  # imported as benchmarks.bench_near_duplicates
     from . import _common as common
 
 
 def parse_args(argv):
-    p = argparse.ArgumentParser(description="Benchmark sparseindex.dedupe against a brute-force scipy.sparse peer.")
+    p = argparse.ArgumentParser(description="Benchmark sparseindex.near_duplicates against a brute-force scipy.sparse peer.")
     p.add_argument("--sizes", default="1e4,3e4,1e5,3e5,1e6",
                    help="comma-separated batch sizes N (default 1e4,3e4,1e5,3e5,1e6)")
     p.add_argument("--fit-min", type=float, default=1e5, dest="fit_min",
                    help="fit the growth exponent over sizes from this N up (default 1e5)")
     p.add_argument("--quick", action="store_true", help="CI smoke run: N = 3,000 and 10,000, one repeat")
     p.add_argument("--bits", type=int, default=2048, help="code width (default 2048)")
-    p.add_argument("--active", type=int, default=40, help="set bits per code (default 40)")
+    p.add_argument("--weight", type=int, default=40, help="set bits per code (default 40)")
     p.add_argument("--min-overlap", type=int, default=32, dest="min_overlap", help="match threshold (default 32)")
     p.add_argument("--fraction", type=float, default=0.1, help="share of planted near-duplicates (default 0.1)")
     p.add_argument("--max-changed", type=int, default=8, dest="max_changed",
                    help="most bits a near-duplicate swaps (default 8)")
-    p.add_argument("--recall", type=float, default=0.99, help="dedupe's recall target (default 0.99)")
+    p.add_argument("--recall", type=float, default=0.99, help="the labelling's recall target (default 0.99)")
     p.add_argument("--repeats", type=int, default=3, help="timed repeats below 10^6 codes (default 3; 1 at 10^6+)")
     p.add_argument("--peer-max", type=float, default=1e5, dest="peer_max",
                    help="largest N the brute-force peer runs at (default 1e5)")
@@ -167,12 +167,12 @@ def growth_exponent(sizes, seconds):
 
 
 def bench_size(n, args, log):
-    from sparseindex import dedupe
-    from sparseindex.dedupe import planted_duplicates
+    from sparseindex import label_near_duplicates
+    from sparseindex.near_duplicates import planted_duplicates
 
     m = args.min_overlap
     t0 = time.perf_counter()
-    codes, source, changed = planted_duplicates(n, args.bits, args.active, fraction=args.fraction,
+    codes, source, changed = planted_duplicates(n, args.bits, args.weight, fraction=args.fraction,
                                                 max_changed=args.max_changed, seed=args.seed + n)
     log(f"N={n:,}: data made in {time.perf_counter() - t0:.1f} s")
     repeats = 1 if n >= 10**6 else args.repeats
@@ -183,7 +183,7 @@ def bench_size(n, args, log):
         for _ in range(repeats):
             holder = {}
             samples.append(common.time_once(lambda: holder.setdefault(
-                "r", dedupe(codes, min_overlap=m, recall=args.recall, seed=args.seed, return_summary=True, **kw))))
+                "r", label_near_duplicates(codes, min_overlap=m, recall=args.recall, seed=args.seed, return_summary=True, **kw))))
             result = holder["r"]
         return common.Timing(samples), result
 
@@ -225,11 +225,11 @@ def bench_size(n, args, log):
 def report(rows, args, record, compile_s):
     s = rows[-1]["summary"]
     out = [
-        "# sparseindex dedupe benchmark",
+        "# sparseindex near-duplicates benchmark",
         "",
-        f"Random codes of {args.bits} bits with {args.active} set bits, {args.fraction:.0%} of them planted "
+        f"Random codes of {args.bits} bits with {args.weight} set bits, {args.fraction:.0%} of them planted "
         f"near-duplicates (a random code's copy with 0..{args.max_changed} bits swapped, overlap >= "
-        f"{args.active - args.max_changed} with its source), shuffled. `dedupe(codes, min_overlap="
+        f"{args.weight - args.max_changed} with its source), shuffled. `label_near_duplicates(codes, min_overlap="
         f"{args.min_overlap}, recall={args.recall})`; times are median (min–max) over the repeats "
         "(one run at 10^6 codes), after the kernels were compiled or loaded from numba's cache "
         f"({compile_s:.1f} s).",
@@ -305,16 +305,16 @@ def _timing(d):
 
 def main(argv=None):
     args = parse_args(argv)
-    from sparseindex import Codes, dedupe
+    from sparseindex import Codes, label_near_duplicates
 
     def log(msg):
         print(msg, file=sys.stderr, flush=True)
 
     t0 = time.perf_counter()
-    warm = Codes.random(2000, args.bits, args.active, seed=1)
+    warm = Codes.random(2000, args.bits, args.weight, seed=1)
     for method in ("banding", "index"):
         for mode in ("first", "components"):
-            dedupe(warm, min_overlap=args.min_overlap, method=method, mode=mode, seed=1)
+            label_near_duplicates(warm, min_overlap=args.min_overlap, method=method, mode=mode, seed=1)
     compile_s = time.perf_counter() - t0
     rows = [bench_size(n, args, log) for n in args.sizes]
     record = common.machine_record()

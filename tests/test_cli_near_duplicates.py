@@ -1,7 +1,7 @@
-"""The ``sparseindex dedupe`` subcommand: every input form, outputs, and each bad input's message.
+"""The ``sparseindex near-duplicates`` subcommand: every input form, outputs, and each bad input's message.
 
-Reference for the labels: :func:`sparseindex.dedupe` on the same codes
-(itself checked against scipy.sparse brute force in ``test_dedupe.py``); the
+Reference for the labels: :func:`sparseindex.near_duplicates` on the same codes
+(itself checked against scipy.sparse brute force in ``test_near_duplicates.py``); the
 files are written with numpy (``np.save``, ``np.savez``) and
 ``scipy.sparse.save_npz``.
 """
@@ -15,9 +15,9 @@ import numpy as np
 import pytest
 import scipy.sparse as sp
 
-from sparseindex import dedupe
+from sparseindex import label_near_duplicates
 from sparseindex.cli import main
-from sparseindex.dedupe import planted_duplicates
+from sparseindex.near_duplicates import planted_duplicates
 
 MIN = 18
 
@@ -47,7 +47,7 @@ def files(tmp_path, codes):
 
 
 def run(argv, capsys):
-    status = main(["dedupe"] + argv)
+    status = main(["near-duplicates"] + argv)
     captured = capsys.readouterr()
     return status, captured.out, captured.err
 
@@ -61,10 +61,10 @@ def test_every_input_form_writes_the_library_labels(form, mode, files, codes, tm
         argv += ["--bits", "300"]
     status, stdout, err = run(argv, capsys)
     assert status == 0, err
-    want = dedupe(codes, min_overlap=MIN, mode=mode)
+    want = label_near_duplicates(codes, min_overlap=MIN, mode=mode)
     got = np.load(out)
     assert got.dtype == np.int64 and np.array_equal(got, want)
-    assert f"sparseindex dedupe: {files[form]}" in stdout
+    assert f"sparseindex near-duplicates: {files[form]}" in stdout
     assert f"groups: {len(np.unique(want)):,}" in stdout and f"labels: {out}" in stdout
     assert f"mode {mode}" in stdout
     assert not [f for f in os.listdir(tmp_path) if f.startswith(".labels-")]  # no temporary left
@@ -75,7 +75,7 @@ def test_width_of_an_index_matrix_is_inferred_without_bits(files, codes, capsys)
     assert status == 0
     record = json.loads(stdout)
     assert record["bits"] == int(np.stack(codes.to_indices()).max()) + 1
-    assert record["groups"] == len(np.unique(dedupe(codes, min_overlap=MIN)))
+    assert record["groups"] == len(np.unique(label_near_duplicates(codes, min_overlap=MIN)))
 
 
 def test_json_summary_names_method_bands_and_recall(files, capsys):
@@ -158,7 +158,7 @@ def test_bad_input_exits_2_with_one_line_naming_the_fault(name, extra, message, 
     assert status == 2
     assert stdout == ""
     assert len(err.strip().splitlines()) == 1
-    assert err.startswith("sparseindex dedupe: ")
+    assert err.startswith("sparseindex near-duplicates: ")
     assert message in err, err
 
 
@@ -183,7 +183,7 @@ def test_bad_options_exit_2_with_one_line(extra, message, files, capsys):
 ])
 def test_malformed_arguments_exit_2(argv, message, capsys):
     with pytest.raises(SystemExit) as info:
-        main(["dedupe"] + argv)
+        main(["near-duplicates"] + argv)
     assert info.value.code == 2
     assert message in capsys.readouterr().err
 
