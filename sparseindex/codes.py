@@ -550,6 +550,12 @@ class Codes:
         return Codes._wrap(np.concatenate([b._words for b in batches]), bits)
 
 
+def _quoted(value, limit: int = 60) -> str:
+    """``repr(value)``, cut to ``limit`` characters, for error messages."""
+    text = repr(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
 def _row_array(row, r: int) -> np.ndarray:
     """One row of a sequence of index sequences as a 1-D array."""
     if isinstance(row, (Set, frozenset)):
@@ -623,7 +629,8 @@ def as_codes(obj, bits: int, *, what: str = "codes") -> Codes:
                     raise TypeError(f"{what}: row {r} is a bitarray but other rows are not; do not mix forms")
             codes = Codes.from_indices(obj, bits)
     else:
-        raise TypeError(f"{what}: {type(obj).__name__} is not an accepted batch; accepted: {ACCEPTED_BATCH_FORMS}")
+        raise TypeError(f"{what}: {_quoted(obj)} ({type(obj).__name__}) is not an accepted batch; "
+                        f"accepted: {ACCEPTED_BATCH_FORMS}")
     if codes.bits != bits:
         raise ValueError(f"{what}: codes have bits={codes.bits}, expected bits={bits}")
     return codes
@@ -686,7 +693,8 @@ def as_code(obj, bits: int, *, what: str = "code") -> Codes:
     elif isinstance(obj, (Set, frozenset, list, tuple, range)):
         codes = Codes.from_indices([obj], bits)
     else:
-        raise TypeError(f"{what}: {type(obj).__name__} is not an accepted code; accepted: {ACCEPTED_SINGLE_FORMS}")
+        raise TypeError(f"{what}: {_quoted(obj)} ({type(obj).__name__}) is not an accepted code; "
+                        f"accepted: {ACCEPTED_SINGLE_FORMS}")
     if codes.bits != bits:
         raise ValueError(f"{what}: code has bits={codes.bits}, expected bits={bits}")
     return codes
