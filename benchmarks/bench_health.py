@@ -36,7 +36,7 @@ else:  # imported as benchmarks.bench_health
     from . import _common as common
 
 from sparseindex import Codes, Store  # noqa: E402
-from sparseindex.bank import DetectorBank  # noqa: E402
+from sparseindex.store.bank import DetectorBank  # noqa: E402
 
 
 def parse_args(argv):

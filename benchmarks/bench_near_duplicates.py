@@ -141,8 +141,7 @@ def prefix_filter_candidates(codes, m):
     in that order share one: ``sum over bits of C(p_b, 2)`` candidates,
     ``p_b`` the codes whose prefix holds bit b.
     """
-    from sparseindex import _kernels
-
+    from sparseindex._numba import kernels as _kernels
     indptr, flat = _kernels.unpack_indices(codes.words, codes.weights.astype(np.int64))
     usage = np.bincount(flat, minlength=codes.bits)
     rank = np.empty(codes.bits, dtype=np.int64)

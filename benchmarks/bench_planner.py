@@ -32,7 +32,7 @@ except ImportError:  # run from a checkout without installing
 
 from sparseindex import model  # noqa: E402
 from sparseindex.model import PlanError  # noqa: E402
-from sparseindex.planner import plan  # noqa: E402
+from sparseindex.model.planner import plan  # noqa: E402
 
 LADDER = [
     # bits, weight, noise

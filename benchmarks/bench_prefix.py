@@ -45,8 +45,9 @@ else:  # imported as benchmarks.bench_prefix
 
 import numba  # noqa: E402
 
-from sparseindex import Codes, Store, _kernels  # noqa: E402
-from sparseindex.bank import VERIFY_COST_POSTINGS  # noqa: E402
+from sparseindex import Codes, Store  # noqa: E402
+from sparseindex._numba import kernels as _kernels
+from sparseindex.store.bank import VERIFY_COST_POSTINGS  # noqa: E402
 
 BITS, WEIGHT, THRESHOLD = 2048, 40, 20
 SETTINGS = [4.0, 16.0, 64.0, 256.0, 1024.0, 4096.0, math.inf]

@@ -55,7 +55,8 @@ else:  # imported as benchmarks.bench_scaling
 
 import numba  # noqa: E402
 
-from sparseindex import Codes, Store, _kernels  # noqa: E402
+from sparseindex import Codes, Store  # noqa: E402
+from sparseindex._numba import kernels as _kernels
 
 ROOT = os.path.dirname(os.path.dirname(os.path.abspath(__file__)))
 BITS, WEIGHT = 2048, 40

@@ -15,11 +15,11 @@ Examples
 
 from . import model
 from .codes import Codes
-from .near_duplicates import NearDuplicateSummary, label_near_duplicates
+from .near_duplicates.labelling import NearDuplicateSummary, label_near_duplicates
 from .errors import SaturationWarning, FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
 from .model import PlanError
-from .planner import Plan, plan
-from .store import BatchHits, Hits, Store
+from .model.planner import Plan, plan
+from .store.single import BatchHits, Hits, Store
 
 __version__ = "0.1.0"
 

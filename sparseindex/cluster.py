@@ -53,17 +53,18 @@ from numbers import Integral
 
 import numpy as np
 
-from . import _persist, model
+from .store import format as _persist
+from . import model
 from . import health as _health
-from ._locks import ReadWriteLock
+from .store.guard import ReadWriteLock
 from .codes import Codes, as_code, as_codes
 from .errors import SaturationWarning, ReadOnlyStoreError, StoreFormatError
 from .health import Health, FalseHitMeasurement
-from .planner import Plan, plan as make_plan
-from .store import BatchHits, Hits, Store, ids_below
-from .store import _check_chance as _chance
-from .store import _check_fraction as _fraction
-from .store import _check_new_ids as _new_ids
+from .model.planner import Plan, plan as make_plan
+from .store.single import BatchHits, Hits, Store, ids_below
+from .store.single import _check_chance as _chance
+from .store.single import _check_fraction as _fraction
+from .store.single import _check_new_ids as _new_ids
 
 __all__ = ["ShardedStore", "ShardHost", "ShardLostError", "shard_of", "share_targets"]
 

@@ -18,7 +18,7 @@ from numbers import Integral
 
 import numpy as np
 
-from . import _kernels
+from ._numba import kernels as _kernels
 
 __all__ = ["Codes", "as_codes", "as_code", "ACCEPTED_BATCH_FORMS", "ACCEPTED_SINGLE_FORMS"]
 

@@ -1,6 +1,6 @@
 """The built-in demonstration: one invented scenario, end to end.
 
-``sparseindex demo`` (module :mod:`sparseindex._cli_demo`) calls :func:`run`.
+``sparseindex demo`` (module :mod:`sparseindex.cli.demo`) calls :func:`run`.
 The scenario is invented and its data are generated on the fly from a seed:
 the Quillmarsh weaving mill scans every bolt of cloth it weaves and hashes
 the bolt's 40 most distinctive weave features into a 2048-bit code. Its
@@ -39,11 +39,12 @@ import warnings
 
 import numpy as np
 
-from . import _banding, model
+from .near_duplicates import banding as _banding
+from . import model
 from .codes import Codes
-from .near_duplicates import TqdmProgress, _near_copies, label_near_duplicates, planted_duplicates
+from .near_duplicates.labelling import TqdmProgress, _near_copies, label_near_duplicates, planted_duplicates
 from .errors import SaturationWarning
-from .store import Store
+from .store.single import Store
 
 __all__ = ["run", "DemoResult", "Recall", "Stage", "DEFAULT_SIZE"]
 

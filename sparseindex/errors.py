@@ -15,7 +15,7 @@ Examples
 
 from __future__ import annotations
 
-__all__ = ["StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "SaturationWarning"]
+__all__ = ["StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "SaturationWarning", "PlanError"]
 
 
 class StoreFormatError(ValueError):
@@ -90,4 +90,22 @@ class SaturationWarning(UserWarning):
     ...         _ = store.add(Codes.random(1, 64, 4, seed=k))
     >>> any(w.category is SaturationWarning for w in seen)
     True
+    """
+
+
+class PlanError(ValueError):
+    """No configuration meets the requested targets.
+
+    Raised by :func:`sparseindex.plan`; the message names the target
+    that cannot be met and the best values that can be reached. A
+    ``ValueError``, so callers that catch bad arguments catch it too.
+
+    Examples
+    --------
+    >>> from sparseindex import plan
+    >>> try:
+    ...     plan(1536, 30, false_hit=1e-9, capacity=10**6, noise=0.95)
+    ... except PlanError as exc:
+    ...     print(isinstance(exc, ValueError), str(exc)[:60])
+    True false_hit=1e-09 at capacity=1,000,000 cannot be met together
     """

@@ -46,7 +46,8 @@ import warnings
 
 import numpy as np
 
-from . import _kernels, model
+from ._numba import kernels as _kernels
+from . import model
 from .errors import SaturationWarning
 
 __all__ = ["Health", "FalseHitMeasurement", "STATUSES"]

@@ -21,8 +21,10 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.sparse.csgraph import connected_components
 
-from sparseindex import Codes, _banding, _unionfind
-from sparseindex._banding import (
+from sparseindex import Codes
+from sparseindex.near_duplicates import banding as _banding
+from sparseindex.near_duplicates import unionfind as _unionfind
+from sparseindex.near_duplicates.banding import (
     MAX_HASHES,
     MAX_ROWS,
     bands_for_recall,

@@ -19,7 +19,8 @@ pytestmark = pytest.mark.jit_only
 SMOKE = textwrap.dedent(
     """
     import sparseindex
-    from sparseindex import Codes, Store, _config
+    from sparseindex import Codes, Store
+    from sparseindex._numba import config as _config
     codes = Codes.random(500, 128, 12, seed=1)
     store = Store(128, threshold=6, seed=2)
     store.add(codes)
@@ -131,7 +132,10 @@ def test_numba_loads_on_the_first_kernel_call_and_every_kernel_is_swapped_in():
         import sys
         import sparseindex
         assert "numba" not in sys.modules, "import sparseindex imported numba"
-        from sparseindex import Codes, Store, _banding, _kernels, _unionfind, model
+        from sparseindex import Codes, Store, model
+        from sparseindex.near_duplicates import banding as _banding
+        from sparseindex._numba import kernels as _kernels
+        from sparseindex.near_duplicates import unionfind as _unionfind
         store = Store(64, threshold=2, seed=0)
         store.add([[1, 2, 3], [2, 3, 4]])
         assert store.query([2, 3]).ids.tolist() == [0, 1]

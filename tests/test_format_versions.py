@@ -17,7 +17,8 @@ import warnings
 import numpy as np
 import pytest
 
-from sparseindex import Codes, Store, StoreFormatError, _persist
+from sparseindex import Codes, Store, StoreFormatError
+from sparseindex.store import format as _persist
 from sparseindex.errors import FormatVersionWarning
 
 from tests.fixtures.write_fixtures import answers_of, store_fixture

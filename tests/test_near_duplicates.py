@@ -21,7 +21,8 @@ from hypothesis import strategies as st
 from scipy.sparse.csgraph import connected_components
 
 import sparseindex
-from sparseindex import Codes, NearDuplicateSummary, _banding, label_near_duplicates
+from sparseindex import Codes, NearDuplicateSummary, label_near_duplicates
+from sparseindex.near_duplicates import banding as _banding
 from sparseindex.near_duplicates import EXACT_BUDGET_SECONDS, planted_duplicates
 
 # ---------------------------------------------------------------------------

@@ -17,7 +17,8 @@ import zlib
 import numpy as np
 import pytest
 
-from sparseindex import Codes, FormatVersionWarning, ReadOnlyStoreError, Store, StoreFormatError, _persist
+from sparseindex import Codes, FormatVersionWarning, ReadOnlyStoreError, Store, StoreFormatError
+from sparseindex.store import format as _persist
 from tests.naive import hits_as_pairs
 
 

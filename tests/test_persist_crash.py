@@ -14,8 +14,9 @@ import time
 import numpy as np
 import pytest
 
-from sparseindex import Codes, Store, _persist
+from sparseindex import Codes, Store
 
+from sparseindex.store import format as _persist
 pytestmark = pytest.mark.skipif(not hasattr(os, "fork"), reason="needs os.fork")
 
 

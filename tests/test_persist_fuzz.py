@@ -16,7 +16,8 @@ import numpy as np
 from hypothesis import event, given, settings
 from hypothesis import strategies as st
 
-from sparseindex import Codes, Store, StoreFormatError, _persist
+from sparseindex import Codes, Store, StoreFormatError
+from sparseindex.store import format as _persist
 from tests.test_persist import _big_header, header_of, reheader
 
 

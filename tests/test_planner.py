@@ -14,9 +14,10 @@ import numpy as np
 import pytest
 from hypothesis import given, settings, strategies as st
 
-from sparseindex import _cli_plan, model
+from sparseindex import model
+from sparseindex.cli import plan as _cli_plan
 from sparseindex.model import PlanError
-from sparseindex.planner import Plan, plan
+from sparseindex.model.planner import Plan, plan
 
 
 def meets(p_code, miss, F, M, R):

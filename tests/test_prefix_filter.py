@@ -16,7 +16,8 @@ import scipy.stats
 from hypothesis import given
 from hypothesis import strategies as st
 
-from sparseindex import Codes, Store, _kernels
+from sparseindex import Codes, Store
+from sparseindex._numba import kernels as _kernels
 from tests.naive import NaiveStore, hits_as_pairs, noisy_copy, random_code
 
 COSTS = [0.0, 256.0, math.inf]

@@ -13,8 +13,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from sparseindex import _kernels
-
+from sparseindex._numba import kernels as _kernels
 CHUNK = _kernels.FIRE_CHUNK
 
 

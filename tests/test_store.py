@@ -277,8 +277,7 @@ def test_single_query_with_more_hits_than_the_first_room_rescans_correctly():
 
 def test_parallel_and_serial_single_queries_agree_and_leave_the_kept_counters_zero(monkeypatch):
     """The parallel path keeps its counter rows between calls; every query must leave them zeroed."""
-    from sparseindex import bank
-
+    from sparseindex.store import bank as bank
     rng = np.random.default_rng(11)
     store = SmallBlockStore(bits=64, threshold=3, seed=0)
     store.add([np.sort(rng.choice(64, size=int(rng.integers(3, 9)), replace=False)).tolist() for _ in range(600)])

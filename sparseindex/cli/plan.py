@@ -13,12 +13,12 @@ import json
 import math
 import sys
 
-from .model import PlanError
-from .planner import plan
+from ..model import PlanError
+from ..model.planner import plan
 
 __all__ = ["add_parser", "run"]
 
-_POSTING_BYTES = 2  # postings are uint16 offsets within a block of detectors (bank.py)
+_POSTING_BYTES = 2  # postings are uint16 offsets within a block of detectors (store/bank.py)
 
 
 def _count(text):
@@ -156,7 +156,7 @@ def _report(best):
     postings = best.postings_per_code * best.target_capacity
     lines += [
         "",
-        f"  limit: stored codes at which false hits per query reach the target",
+        "  limit: stored codes at which false hits per query reach the target",
         f"  at {best.target_capacity:,} codes: {postings:,} postings "
         f"(~{_fmt_bytes(postings * _POSTING_BYTES)} as uint16 postings), "
         f"~{best.updates_per_query:,.0f} counter updates per query",

@@ -15,7 +15,7 @@ import argparse
 import os
 import sys
 
-from ._cli_plan import _count
+from .plan import _count
 
 __all__ = ["add_parser", "run"]
 
@@ -30,7 +30,7 @@ def add_parser(subparsers):
     >>> args.size, args.seed, args.out, args.plot
     (5000, 2, None, True)
     """
-    from .demo import DEFAULT_SIZE, MIN_SIZE
+    from ..demo import DEFAULT_SIZE, MIN_SIZE
 
     p = subparsers.add_parser(
         "demo",
@@ -73,7 +73,7 @@ def run(args) -> int:
     >>> run(argparse.Namespace(size=10, seed=1, out=None, plot=False, progress=False))
     2
     """
-    from .demo import MIN_SIZE, run as run_demo
+    from ..demo import MIN_SIZE, run as run_demo
 
     if args.size < MIN_SIZE:
         return _fail(f"--size {args.size:,} must be at least {MIN_SIZE:,}")

@@ -23,7 +23,7 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._config import DISABLE_JIT, inline_kernel, kernel, on_first_use, parallel_kernel, prange
+from .config import DISABLE_JIT, inline_kernel, kernel, on_first_use, parallel_kernel, prange
 
 # ---------------------------------------------------------------------------
 # bit tricks and a counter-based random stream

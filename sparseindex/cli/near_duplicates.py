@@ -27,9 +27,9 @@ import tempfile
 
 import numpy as np
 
-from ._cli_plan import _count, _number
-from .codes import Codes
-from .near_duplicates import TqdmProgress, label_near_duplicates
+from .plan import _count, _number
+from ..codes import Codes
+from ..near_duplicates.labelling import TqdmProgress, label_near_duplicates
 
 __all__ = ["add_parser", "run", "load_codes", "InputError"]
 
@@ -42,7 +42,7 @@ class InputError(ValueError):
     >>> load_codes("missing.npy")
     Traceback (most recent call last):
     ...
-    sparseindex._cli_near_duplicates.InputError: missing.npy: no such file
+    sparseindex.cli.near_duplicates.InputError: missing.npy: no such file
     >>> issubclass(InputError, ValueError)
     True
     """
@@ -133,7 +133,7 @@ def load_codes(path, bits=None) -> Codes:
     >>> load_codes(path, bits=8)
     Traceback (most recent call last):
     ...
-    sparseindex._cli_near_duplicates.InputError: ...codes.npy: row 2: bit index 8 is out of range for bits=8 (valid 0..7)
+    sparseindex.cli.near_duplicates.InputError: ...codes.npy: row 2: bit index 8 is out of range for bits=8 (valid 0..7)
     """
     if not os.path.exists(path):
         raise InputError(f"{path}: no such file")

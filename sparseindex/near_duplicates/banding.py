@@ -36,9 +36,9 @@ from dataclasses import dataclass
 
 import numpy as np
 
-from . import _kernels
-from ._config import PARALLEL_LOCK, kernel, parallel_kernel, prange, thread_count
-from ._kernels import _mix64, popcount64
+from .._numba import kernels as _kernels
+from .._numba.config import PARALLEL_LOCK, kernel, parallel_kernel, prange, thread_count
+from .._numba.kernels import _mix64, popcount64
 
 __all__ = [
     "s_curve",

@@ -13,8 +13,8 @@ from __future__ import annotations
 import math
 import sys
 
-from ._cli_plan import _count, _number
-from .errors import StoreFormatError
+from .plan import _count, _number
+from ..errors import StoreFormatError
 
 __all__ = ["add_parser", "run", "plot_headroom"]
 
@@ -88,7 +88,7 @@ def run(args) -> int:
     >>> run(argparse.Namespace(**{**vars(args), "path": path + ".missing"}))
     2
     """
-    from .store import Store
+    from ..store.single import Store
 
     if args.measure < 0:
         return _fail(f"--measure {args.measure} must be >= 0")
@@ -148,7 +148,7 @@ def plot_headroom(store, report, path) -> str:
     import matplotlib.pyplot as plt
     import numpy as np
 
-    from . import model
+    from .. import model
 
     h = report
     top = max(10.0, 4.0 * max(h.items, 1))

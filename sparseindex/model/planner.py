@@ -29,8 +29,8 @@ import numbers
 
 import numpy as np
 
-from . import model as _model
-from .model import PlanError
+from ..errors import PlanError
+from . import hypergeometric as _model
 
 __all__ = ["Plan", "PlanError", "plan"]
 
@@ -213,7 +213,7 @@ def _rows_log_pmf(N, K, segs, width):
     j = np.arange(width, dtype=np.float64)[None, :]
     kmin = np.maximum(0.0, s - (N - K))
     kmax = np.minimum(float(K), s)
-    anchor = _model._log_hyp_pmf(kmin, float(N), float(K), s)
+    anchor = _model.log_hyp_pmf(kmin, float(N), float(K), s)
     inside = (j >= kmin) & (j < kmax)
     with np.errstate(divide="ignore", invalid="ignore"):
         lr = np.log((K - j) * (s - j)) - np.log((j + 1.0) * (N - K - s + j + 1.0))
@@ -257,7 +257,7 @@ class _Search:
         return [self._exact_lp[t] for t in triples]
 
     def meets_false_hit(self, lp):
-        return float(_model._log_store_false_hit(lp, float(self.M))) <= self.log_F
+        return float(_model.log_store_false_hit(lp, float(self.M))) <= self.log_F
 
     def exact_log_miss(self, s, th, D):
         return _model.recall(self.a, s, th, D, self.noise, log=True,
@@ -316,7 +316,7 @@ class _Search:
             last, prev = false[:, -1], false[:, -2]
             with np.errstate(invalid="ignore"):
                 lr = last - prev
-                bound = last + lr - _model._log1mexp(np.minimum(lr, 0.0))
+                bound = last + lr - _model.log1mexp(np.minimum(lr, 0.0))
             ref = tail[:, min(width, fwidth) - 1]
             good = (kmax < fwidth) | ((lr < 0) & (bound <= ref - 45.0))
             if np.all(good):
@@ -489,7 +489,7 @@ def _make_plan(search, s, th, D, lp):
     return Plan(
         sample_size=int(s), threshold=int(th), detectors=int(D),
         false_hit_per_code=math.exp(lp),
-        false_hit_per_query=math.exp(float(_model._log_store_false_hit(
+        false_hit_per_query=math.exp(float(_model.log_store_false_hit(
             lp, float(search.M)))),
         recall=-math.expm1(lmiss), miss=math.exp(lmiss),
         limit=cap, postings_per_code=int(s * D),
@@ -514,7 +514,7 @@ def _impossible(search, seen):
     # Compared per query at the requested capacity, where many chances
     # saturate at 1; at most 64 exact evaluations.
     order = np.lexsort((dets, segs, l1))
-    lower = _model._log_store_false_hit(l1[order], float(search.M))
+    lower = _model.log_store_false_hit(l1[order], float(search.M))
     best = (math.inf, math.inf, None)
     for start in range(0, min(order.size, 64), 8):
         idx = order[start:start + 8]
@@ -522,7 +522,7 @@ def _impossible(search, seen):
             break
         trip = [(int(segs[i]), int(ths[i]), int(dets[i])) for i in idx]
         for lp, t in zip(search.exact_many(trip), trip):
-            lq = float(_model._log_store_false_hit(lp, float(search.M)))
+            lq = float(_model.log_store_false_hit(lp, float(search.M)))
             best = min(best, (lq, lp, t))
     _, lp, (s, th, D) = best
     plan_ = _make_plan(search, s, th, D, lp)

@@ -48,10 +48,11 @@ from numbers import Integral, Real
 
 import numpy as np
 
-from . import _banding, _unionfind
-from ._config import thread_count
-from .codes import Codes, as_codes
-from .store import Store
+from . import banding as _banding
+from . import unionfind as _unionfind
+from .._numba.config import thread_count
+from ..codes import Codes, as_codes
+from ..store.single import Store
 
 __all__ = ["label_near_duplicates", "NearDuplicateSummary", "TqdmProgress", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
 
@@ -673,7 +674,7 @@ def planted_duplicates(count, bits, weight, *, fraction=0.1, max_changed=8, chai
 
 
 def _kernels_unpack(codes: Codes) -> np.ndarray:
-    from . import _kernels
+    from .._numba import kernels as _kernels
 
     return _kernels.unpack_indices(codes._words, codes._weights)[1]
 

@@ -22,8 +22,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from ._config import kernel
-from ._kernels import _mix64
+from .._numba.config import kernel
+from .._numba.kernels import _mix64
 
 __all__ = ["row_hashes", "exact_copy_owners", "component_roots", "greedy_first"]
 
@@ -62,7 +62,7 @@ def exact_copy_owners(order, later, words):
 
     Examples
     --------
-    >>> from sparseindex._banding import run_pair_counts
+    >>> from sparseindex.near_duplicates.banding import run_pair_counts
     >>> words = np.array([[5], [7], [5], [5]], dtype=np.uint64)
     >>> h = row_hashes(words)
     >>> order = np.argsort(h, kind="stable")

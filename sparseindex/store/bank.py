@@ -23,8 +23,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from . import _kernels
-from ._config import PARALLEL_LOCK, PARALLEL_SINGLE_QUERY, thread_count
+from .._numba import kernels as _kernels
+from .._numba.config import PARALLEL_LOCK, PARALLEL_SINGLE_QUERY, thread_count
 
 #: Detector ids are int32 in results and int64 in kernels; keep them int32-sized.
 MAX_DETECTORS_TOTAL = 2**31 - 1

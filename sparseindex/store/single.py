@@ -19,12 +19,13 @@ from numbers import Integral
 
 import numpy as np
 
-from . import _kernels, _persist
-from ._config import PARALLEL_LOCK
-from ._locks import ReadWriteLock
+from .._numba import kernels as _kernels
+from . import format as _persist
+from .._numba.config import PARALLEL_LOCK
+from .guard import ReadWriteLock
 from .bank import BLOCK_SPAN, DetectorBank
-from .codes import Codes, as_code, as_codes
-from .errors import ReadOnlyStoreError
+from ..codes import Codes, as_code, as_codes
+from ..errors import ReadOnlyStoreError
 
 __all__ = ["Store", "Hits", "BatchHits"]
 
@@ -321,7 +322,7 @@ class Store:
         >>> s.plan.false_hit_per_query <= 1e-6 and s.plan.recall >= 0.999
         True
         """
-        from .planner import plan as make_plan
+        from ..model.planner import plan as make_plan
 
         chosen = make_plan(
             bits, weight, false_hit=false_hit, capacity=capacity, noise=noise, recall=recall,
@@ -963,7 +964,7 @@ class Store:
         >>> h.status, h.items, h.limit >= 50_000
         ('healthy', 1000, True)
         """
-        from . import health
+        from .. import health
 
         if false_hit is not None:
             false_hit = _check_chance("false_hit", false_hit)
@@ -990,7 +991,7 @@ class Store:
         >>> r.queries, 0 < r.rate < 1, r.low <= r.rate <= r.high
         (2000, True, True)
         """
-        from . import health
+        from .. import health
 
         return health.measure_false_hits(self, queries, source=source, seed=seed)
 
@@ -1017,7 +1018,7 @@ class Store:
         >>> seen
         [('healthy', 'filling'), ('filling', 'saturated')]
         """
-        from . import health
+        from .. import health
 
         if on_status is not None and not callable(on_status):
             raise TypeError(f"on_status={on_status!r} must be callable or None")
@@ -1141,7 +1142,7 @@ class Store:
         if state.plan is not None:
             # a planned store warns past the limit, as for_target's does; the
             # level is first taken at the first change (not at load: O(N))
-            from .health import _Watch
+            from ..health import _Watch
 
             store._watch = _Watch(None, 0.8, None)
         return store

@@ -29,9 +29,9 @@ import zlib
 
 import numpy as np
 
-from . import _kernels
-from ._config import PARALLEL_LOCK
-from .errors import FormatVersionWarning, StoreFormatError
+from .._numba import kernels as _kernels
+from .._numba.config import PARALLEL_LOCK
+from ..errors import FormatVersionWarning, StoreFormatError
 
 MAGIC = b"\x89SIDX\r\n\x1a"
 FORMAT_MAJOR = 1
@@ -188,7 +188,7 @@ def encode(state: StoreState):
 
 
 def _library_version() -> str:
-    from . import __version__
+    from .. import __version__
 
     return f"sparseindex {__version__}"
 
@@ -482,7 +482,7 @@ def _parse_layout(header, v, strict, data_start, size, path):
 def _parse_plan(plan, v, path):
     if plan is None:
         return None
-    from .planner import Plan
+    from ..model.planner import Plan
 
     def build(obj, where, depth):
         names = [f.name for f in dataclasses.fields(Plan)]

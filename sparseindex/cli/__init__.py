@@ -11,14 +11,14 @@ import argparse
 import importlib
 import sys
 
-from . import __version__
+from .. import __version__
 
 #: Subcommand name -> module (inside this package) with ``add_parser`` and ``run``.
 COMMANDS = {
-    "plan": "._cli_plan",
-    "health": "._cli_health",
-    "near-duplicates": "._cli_near_duplicates",
-    "demo": "._cli_demo",
+    "plan": ".plan",
+    "health": ".health",
+    "near-duplicates": ".near_duplicates",
+    "demo": ".demo",
 }
 
 
