@@ -53,12 +53,11 @@ from numbers import Integral
 
 import numpy as np
 
-from .store import format as _persist
-from . import model
 from . import health as _health
+from .store import format as _persist
 from .store.guard import ReadWriteLock
 from .codes import Codes, as_code, as_codes
-from .errors import SaturationWarning, ReadOnlyStoreError, StoreFormatError
+from .errors import ReadOnlyStoreError, StoreFormatError
 from .health import Health, FalseHitMeasurement
 from .model.planner import Plan, plan as make_plan
 from .store.single import BatchHits, Hits, Store, ids_below
@@ -181,7 +180,8 @@ class ShardHost:
     ``"watch"`` (a ``Store`` whose target is set by ``watch``) or ``"load"``
     (``Store.load``). Besides the store it keeps the bit-usage counts and
     the weight histogram of its live codes (counted on first use, then
-    kept current), which the whole-store health report adds up.
+    kept current), which the whole-store health report adds up from each
+    shard's :meth:`Store.stats`.
     """
 
     def __init__(self, shard, shards, how, args):
@@ -199,26 +199,6 @@ class ShardHost:
             self.store = Store.load(args["path"], mmap=args["mmap"], writable=args["writable"])
         else:
             raise ValueError(f"ShardHost: unknown how={how!r}")
-        self._usage = None
-        self._hist = None
-
-    # -- bookkeeping -----------------------------------------------------
-
-    def _counted(self, codes: Codes, sign: int) -> None:
-        if self._usage is None or len(codes) == 0:
-            return
-        bits = self.store.bits
-        self._usage += sign * np.bincount(codes.to_scipy().indices, minlength=bits)
-        self._hist += sign * np.bincount(codes.weights, minlength=bits + 1)
-
-    def _ensure_counts(self) -> None:
-        if self._usage is None:
-            bits = self.store.bits
-            self._usage = np.zeros(bits, dtype=np.int64)
-            self._hist = np.zeros(bits + 1, dtype=np.int64)
-            ids = self.store.ids()
-            for a in range(0, ids.shape[0], 1 << 16):
-                self._counted(self.store.get(ids[a : a + (1 << 16)]), +1)
 
     def describe(self, check_routing=False) -> dict:
         """Where this shard lives and what it holds (and, on request, that every id belongs here)."""
@@ -241,9 +221,7 @@ class ShardHost:
     # -- the store's operations ------------------------------------------
 
     def add(self, codes, ids):
-        added = self.store.add(codes, ids=ids)
-        self._counted(codes, +1)
-        return added
+        return self.store.add(codes, ids=ids)
 
     def query(self, code, min_overlap):
         return self.store.query(code, min_overlap=min_overlap)
@@ -267,10 +245,7 @@ class ShardHost:
         return mask, self.store.get(ids[mask])
 
     def remove(self, ids):
-        gone = self.store.get(ids) if self._usage is not None else None
         self.store.remove(ids)
-        if gone is not None:
-            self._counted(gone, -1)
 
     def compact(self):
         self.store.compact()
@@ -278,11 +253,8 @@ class ShardHost:
     def ids(self):
         return self.store.ids()
 
-    def stats(self) -> dict:
-        self._ensure_counts()
-        s = self.store
-        return {"items": len(s), "removed": s.removed_count, "nbytes": s.nbytes,
-                "usage": self._usage.copy(), "hist": self._hist.copy()}
+    def stats(self):
+        return self.store.stats()
 
     def detector_samples(self, ids):
         return [self.store.detector_bits(int(i)) for i in ids.tolist()]
@@ -366,12 +338,6 @@ def _greedy(stored: BatchHits, within: BatchHits, first_new: int):
 # ---------------------------------------------------------------------------
 # the client side
 # ---------------------------------------------------------------------------
-
-
-class _Watch:
-    def __init__(self, callback, warn_fraction, false_hit):
-        self.callback, self.warn_fraction, self.false_hit = callback, warn_fraction, false_hit
-        self.status = None
 
 
 class ShardedStore:
@@ -483,7 +449,7 @@ class ShardedStore:
         self._served_lock = threading.Lock()
         self._measurement = None
         self._watch = None
-        self._memo_usage = None
+        self._health_memo = _health.HealthMemo()
         self._closed = False
         self._read_only = None  # or why, for a store loaded read-only
 
@@ -927,9 +893,50 @@ class ShardedStore:
             false_hit = _chance("false_hit", false_hit)
         if warn_fraction is not None:
             warn_fraction = _fraction(warn_fraction)
+        return _health.compute(self._stats("health"), self.detector_samples, self._health_memo, false_hit=false_hit,
+                               warn_fraction=warn_fraction, refresh=bool(refresh))
+
+    def stats(self) -> "_health.StoreStats":
+        """The whole store's snapshot: every shard's :meth:`Store.stats` summed field by field.
+
+        Items, pending removals, memory, bit usage and the weight histogram
+        are sums over the shards; the serving counters, plan, measurement
+        and watch are the whole store's own (a query counts once, not once
+        per shard).
+        """
+        return self._stats("stats")
+
+    def _stats(self, doing):
         with self._rw.reading():
-            self._usable("health")
-            return self._report(false_hit, warn_fraction, bool(refresh))
+            self._usable(doing)
+            parts = self._everywhere("stats", (), doing)
+            with self._served_lock:
+                served = dict(self._served)
+            watch = self._watch
+        return _health.StoreStats(
+            bits=self.bits, threshold=self.threshold, sample_size=self.sample_size, detectors=self.detectors,
+            seed=self.seed, plan=self._plan, items=sum(s.items for s in parts),
+            removed_pending=sum(s.removed_pending for s in parts), usage=np.sum([s.usage for s in parts], axis=0),
+            weight_hist=np.sum([s.weight_hist for s in parts], axis=0),
+            memory_bytes=sum(s.memory_bytes for s in parts), served=served, measurement=self._measurement,
+            watch_false_hit=None if watch is None else watch.false_hit,
+            watch_warn_fraction=None if watch is None else watch.warn_fraction,
+        )
+
+    def detector_samples(self, count, *, seed) -> list:
+        """As :meth:`Store.detector_samples`, over the whole store: the same codes a single store would pick."""
+        with self._rw.reading():
+            self._usable("detector_samples")
+            live = self._all_ids()
+            rng = np.random.default_rng([self.seed, int(seed)])
+            pick = np.sort(rng.choice(live, size=min(int(count), live.shape[0]), replace=False))
+            routes = self._routed(pick)
+            got = self._fanout("detector_samples", {k: (pick[pos],) for k, pos in routes.items()}, "health")
+        samples = [None] * pick.shape[0]
+        for k, pos in routes.items():
+            for p, bits in zip(pos.tolist(), got[k]):
+                samples[p] = bits
+        return samples
 
     def shard_health(self, *, refresh=False) -> list:
         """Each shard's own :meth:`Store.health`, measured against its share of the target.
@@ -947,61 +954,6 @@ class ShardedStore:
                 kwargs["warn_fraction"] = self._watch.warn_fraction
             return self._everywhere("health", (kwargs,), "shard_health")
 
-    def _target(self, false_hit):
-        if false_hit is not None:
-            return false_hit
-        if self._watch is not None and self._watch.false_hit is not None:
-            return self._watch.false_hit
-        return None if self._plan is None else self._plan.target_false_hit
-
-    def _usage_estimate(self, q, usage, items, force, refresh_fraction=0.05):
-        """The usage-aware estimate over the whole store, memoised like ``Store.health``'s."""
-        if items == 0 or q is None or usage.sum() < _health.USAGE_MIN_COUNT * self.bits:
-            return None
-        churn = self._served["added"] + self._served["removed"]
-        if self._memo_usage is not None and not force:
-            then, then_items, then_q, estimate = self._memo_usage
-            if then_q == q and abs(churn - then) < max(1, refresh_fraction * max(items, then_items)):
-                return churn - then, estimate
-        live = self._all_ids()
-        rng = np.random.default_rng([self.seed, churn])
-        pick = np.sort(rng.choice(live, size=min(_health.USAGE_SAMPLE, live.shape[0]), replace=False))
-        routes = self._routed(pick)
-        got = self._fanout("detector_samples", {k: (pick[pos],) for k, pos in routes.items()}, "health")
-        samples = [None] * pick.shape[0]
-        for k, pos in routes.items():
-            for p, bits in zip(pos.tolist(), got[k]):
-                samples[p] = bits
-        freqs, lam = _health.usage_frequencies(usage, items)
-        p = model.usage_bernoulli(freqs, q)
-        estimate = (model.usage_false_hits(p, samples, self.threshold, q, items), lam)
-        self._memo_usage = (churn, items, q, estimate)
-        return 0, estimate
-
-    def _report(self, false_hit, warn_fraction, refresh) -> Health:
-        started = time.perf_counter()
-        stats = self._everywhere("stats", (), "health")
-        usage = np.sum([s["usage"] for s in stats], axis=0)
-        hist = np.sum([s["hist"] for s in stats], axis=0)
-        items = int(sum(s["items"] for s in stats))
-        target = self._target(false_hit)
-        watch, plan = self._watch, self._plan
-        warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
-        q = _health._nominal_weight(self, _health._weights(hist)[1])
-        per_uniform = cap_uniform = None
-        if q is not None:
-            per_uniform, cap_uniform = _health._uniform(self, q, target)
-        est = self._usage_estimate(q, usage, items, refresh)
-        with self._served_lock:
-            served = dict(self._served)
-        return _health.derive(
-            bits=self.bits, threshold=self.threshold, sample_size=self.sample_size, detectors=self.detectors, plan=plan,
-            target=target, warn=warn, usage=usage, hist=hist, items=items,
-            removed_pending=int(sum(s["removed"] for s in stats)), q=q, per_uniform=per_uniform,
-            cap_uniform=cap_uniform, estimate=est, measurement=self._measurement, served=served,
-            memory=int(sum(s["nbytes"] for s in stats)), started=started,
-        )
-
     def measure_false_hits(self, queries=10_000, *, source="uniform", seed=None, batch=2048) -> FalseHitMeasurement:
         """Random unrelated queries through every shard: the measured whole-store false-hit rate.
 
@@ -1010,42 +962,14 @@ class ShardedStore:
         queries do not count as served queries of the whole store (each
         shard's own counters do count them).
         """
-        if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
-            raise ValueError(f"measure_false_hits: queries={queries!r} must be a positive integer")
-        if source not in ("uniform", "usage"):
-            raise ValueError(f"measure_false_hits: source={source!r} must be 'uniform' or 'usage'")
-        if seed is None:
-            seed = int(np.random.SeedSequence().generate_state(1)[0])
-        started = time.perf_counter()
+        _health.check_measurement(queries, source)
+        stats = self._stats("measure_false_hits")
+        report = _health.compute(stats, self.detector_samples, self._health_memo)
         with self._rw.reading():
-            self._usable("measurement")
-            h = self._report(None, None, False)
-            q, items = h.query_weight, h.items
-            if q is None or items == 0:
-                raise ValueError("measure_false_hits: the store is empty; there is nothing to measure")
-            if source == "uniform":
-                unrelated = Codes.random(int(queries), self.bits, q, seed=seed)
-                predicted = h.per_code_uniform
-            else:
-                usage = np.sum([s["usage"] for s in self._everywhere("stats", (), "measurement")], axis=0)
-                p = model.usage_bernoulli(_health.usage_frequencies(usage, items)[0], q)
-                unrelated = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=self.bits)
-                predicted = h.per_code_usage
-            hit_queries = hits = 0
-            for a in range(0, int(queries), batch):
-                counts = self._query_batch(unrelated[a : a + batch], 0, "measure_false_hits").counts
-                hit_queries += int(np.count_nonzero(counts))
-                hits += int(counts.sum())
-        n = int(queries)
-        low, high = model.clopper_pearson(hit_queries, n)
-        result = FalseHitMeasurement(
-            source=source, queries=n, query_weight=q, items=items, queries_hit=hit_queries, hits=hits,
-            rate=hit_queries / n, low=float(low), high=float(high),
-            upper=float(model.clopper_pearson_upper(hit_queries, n)), hits_per_query=hits / n,
-            predicted_rate=None if predicted is None else float(model.store_false_hit(min(1.0, predicted), items)),
-            predicted_hits=None if predicted is None else float(items * predicted),
-            seed=int(seed), seconds=time.perf_counter() - started,
-        )
+            self._usable("measure_false_hits")
+            result = _health.measure_false_hits(
+                report, stats.usage, lambda batch: self._query_batch(batch, 0, "measure_false_hits").counts,
+                queries, source=source, seed=seed, batch=batch)
         self._measurement = result
         return result
 
@@ -1063,7 +987,7 @@ class ShardedStore:
             false_hit = _chance("false_hit", false_hit)
         elif self._plan is None:
             raise ValueError("watch: this store has no plan; give false_hit=... (target chance per query)")
-        watcher = _Watch(on_status, warn_fraction, false_hit)
+        watcher = _health.Watch(on_status, warn_fraction, false_hit)
         self._watch = watcher
         watcher.status = self.health().status
 
@@ -1071,26 +995,12 @@ class ShardedStore:
         watcher = self._watch
         if watcher is None:
             return
+        with self._served_lock:
+            churn = self._served["added"] + self._served["removed"]
         try:
-            h = self.health()
+            watcher.changed(self._items, churn, self.health)
         except Exception as exc:  # the change is done; a failed status check must not hide that
             warnings.warn(f"the status check after a change failed: {exc}", RuntimeWarning, stacklevel=3)
-            return
-        previous, current = watcher.status, h.status
-        watcher.status = current
-        if previous is None or previous == current:
-            return
-        if current == "saturated":
-            warnings.warn(
-                f"the sharded store now holds {h.items:,} codes, past its limit of {h.limit:,.0f} at the "
-                f"false-hit target {h.target_false_hit:g} per query (predicted now: {h.false_hit_now:.3g})",
-                SaturationWarning, stacklevel=3,
-            )
-        if watcher.callback is not None:
-            try:
-                watcher.callback(previous, current, h)
-            except Exception as exc:  # an alert hook must not break ingestion
-                warnings.warn(f"on_status callback raised {exc!r}", RuntimeWarning, stacklevel=3)
 
     # -- persistence -----------------------------------------------------
 

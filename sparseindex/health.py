@@ -46,11 +46,11 @@ import warnings
 
 import numpy as np
 
-from ._numba import kernels as _kernels
 from . import model
 from .errors import SaturationWarning
 
-__all__ = ["Health", "FalseHitMeasurement", "STATUSES"]
+__all__ = ["Health", "FalseHitMeasurement", "StoreStats", "HealthMemo", "Watch", "STATUSES", "compute",
+           "measure_false_hits"]
 
 STATUSES = ("healthy", "filling", "saturated")
 UNKNOWN = "unknown"
@@ -254,23 +254,47 @@ class Health:
 # ---------------------------------------------------------------------------
 
 
-class _Cache:
-    """Per-store memo of the model figures (they change only with the data)."""
+@dataclasses.dataclass(frozen=True)
+class StoreStats:
+    """A store's figures at one moment, everything :func:`compute` needs.
+
+    ``Store.stats()`` takes it under the store's read lock (copies, no
+    model work); a sharded store's is the field-wise sum of its shards'
+    with the whole store's own counters. ``usage`` holds the live codes'
+    set-bit count per bit, ``weight_hist[w]`` the live codes of weight
+    ``w``; ``served`` the counters ``queries``, ``hits``, ``added`` and
+    ``removed``; ``watch_false_hit``/``watch_warn_fraction`` what
+    :meth:`Store.watch` set (None without a watch).
+    """
+
+    bits: int
+    threshold: int
+    sample_size: int | None
+    detectors: int
+    seed: int
+    plan: object
+    items: int
+    removed_pending: int
+    usage: np.ndarray
+    weight_hist: np.ndarray
+    memory_bytes: int
+    served: dict
+    measurement: "FalseHitMeasurement | None"
+    watch_false_hit: float | None
+    watch_warn_fraction: float | None
+
+    @property
+    def churn(self) -> int:
+        """Codes added plus codes removed since the store was made or loaded."""
+        return self.served["added"] + self.served["removed"]
+
+
+class HealthMemo:
+    """A store's memo of its model figures (they change only with the data); the store owns one."""
 
     def __init__(self):
         self.uniform = {}
-        self.usage = None  # (churn at estimate, items, query_weight, UsageFalseHits)
-
-
-def _cache(store) -> _Cache:
-    if getattr(store, "_health_cache", None) is None:
-        store._health_cache = _Cache()
-    return store._health_cache
-
-
-def _churn(store) -> int:
-    served = store._served
-    return served["added"] + served["removed"]
+        self.usage = None  # (churn at estimate, items, query_weight, (UsageFalseHits, shrinkage))
 
 
 def _weights(hist: np.ndarray):
@@ -282,45 +306,24 @@ def _weights(hist: np.ndarray):
     return int(used[0]), mean, int(used[-1])
 
 
-def _nominal_weight(store, mean_weight):
-    """Query weight the models assume: the plan's ``weight``, else the mean stored weight.
-
-    ``store`` is a Store or a ShardedStore (anything with ``plan``, ``bits``, ``threshold``).
-    """
-    if store.plan is not None:
-        return int(store.plan.weight)
+def _nominal_weight(stats, mean_weight):
+    """Query weight the models assume: the plan's ``weight``, else the mean stored weight."""
+    if stats.plan is not None:
+        return int(stats.plan.weight)
     if mean_weight is None:
         return None
-    return min(store.bits, max(store.threshold, int(round(mean_weight))))
+    return min(stats.bits, max(stats.threshold, int(round(mean_weight))))
 
 
-def _uniform(store, q, target):
+def _uniform(stats, memo, q, target):
     """(per-code chance, limit) under the uniform model; memoised."""
     key = (q, target)
-    memo = _cache(store).uniform
-    if key not in memo:
-        sample_size = q if store.sample_size is None else min(store.sample_size, q)
-        threshold = min(store.threshold, sample_size)
-        per_code = float(model.false_hit_per_code(store.bits, q, sample_size, threshold, store.detectors, q))
-        cap = None if target is None else model.code_limit(per_code, target)
-        memo[key] = (per_code, cap)
-    return memo[key]
-
-
-def _sample_detectors(store, count, seed):
-    """Detector samples of ``count`` random live codes: a list of (D, s) arrays."""
-    rows = np.flatnonzero(~store._removed[: store._rows])
-    rng = np.random.default_rng([store.seed, seed])
-    pick = np.sort(rng.choice(rows, size=min(count, rows.shape[0]), replace=False))
-    words = store._words[pick]
-    indptr, indices = _kernels.unpack_indices(words, store._weights[pick].astype(np.int64))
-    det_indptr, det_bits = store._bank.sample(indptr, indices, store._ids_of_rows(pick))
-    D = store.detectors
-    out = []
-    for k in range(pick.shape[0]):
-        a, b = det_indptr[k * D], det_indptr[(k + 1) * D]
-        out.append(det_bits[a:b].reshape(D, -1))
-    return out
+    if key not in memo.uniform:
+        sample_size = q if stats.sample_size is None else min(stats.sample_size, q)
+        threshold = min(stats.threshold, sample_size)
+        per_code = float(model.false_hit_per_code(stats.bits, q, sample_size, threshold, stats.detectors, q))
+        memo.uniform[key] = (per_code, None if target is None else model.code_limit(per_code, target))
+    return memo.uniform[key]
 
 
 def usage_frequencies(usage: np.ndarray, items: int):
@@ -343,63 +346,60 @@ def usage_frequencies(usage: np.ndarray, items: int):
     return np.clip(mean + lam * (f - mean), 0.0, 1.0), lam
 
 
-def _usage_estimate(store, q, usage, items, refresh_fraction, force):
+def _usage_estimate(stats, samples, memo, q, refresh_fraction, force):
     """The usage-aware estimate (memoised until the store changes enough), or None."""
-    if items == 0 or q is None or usage.sum() < USAGE_MIN_COUNT * store.bits:
+    items, usage = stats.items, stats.usage
+    if items == 0 or q is None or usage.sum() < USAGE_MIN_COUNT * stats.bits:
         return None
-    cache = _cache(store)
-    churn = _churn(store)
-    if cache.usage is not None and not force:
-        then, then_items, then_q, estimate = cache.usage
+    churn = stats.churn
+    if memo.usage is not None and not force:
+        then, then_items, then_q, estimate = memo.usage
         if then_q == q and abs(churn - then) < max(1, refresh_fraction * max(items, then_items)):
             return churn - then, estimate
-    codes = _sample_detectors(store, USAGE_SAMPLE, churn)
+    codes = samples(USAGE_SAMPLE, seed=churn)
     freqs, lam = usage_frequencies(usage, items)
     p = model.usage_bernoulli(freqs, q)
-    estimate = model.usage_false_hits(p, codes, store.threshold, q, items)
-    cache.usage = (churn, items, q, (estimate, lam))
+    estimate = model.usage_false_hits(p, codes, stats.threshold, q, items)
+    memo.usage = (churn, items, q, (estimate, lam))
     return 0, (estimate, lam)
 
 
-def compute(store, *, false_hit=None, warn_fraction=None, refresh=False, refresh_fraction=0.05) -> Health:
-    """The :class:`Health` of ``store`` (call :meth:`Store.health`).
+def compute(stats: StoreStats, samples, memo: HealthMemo, *, false_hit=None, warn_fraction=None, refresh=False,
+            refresh_fraction=0.05) -> Health:
+    """The :class:`Health` of a store from its :class:`StoreStats` (call :meth:`Store.health`).
+
+    A function of its arguments and the memo only: ``samples(count,
+    seed=...)`` returns the detector samples of ``count`` live codes chosen
+    by ``seed`` (``Store.detector_samples``), asked for only when the
+    usage-aware estimate is (re)made. No store lock is held here, so a
+    writer never waits on a report.
 
     Examples
     --------
     >>> from sparseindex import Codes, Store
     >>> store = Store(256, threshold=4, seed=0); _ = store.add(Codes.random(100, 256, 8, seed=1))
-    >>> h = compute(store, false_hit=0.01)
-    >>> h.status, h.limit, compute(store).status       # no target: status unknown
+    >>> memo = HealthMemo()
+    >>> h = compute(store.stats(), store.detector_samples, memo, false_hit=0.01)
+    >>> h.status, h.limit, compute(store.stats(), store.detector_samples, memo).status   # no target: unknown
     ('healthy', 377, 'unknown')
     """
     started = time.perf_counter()
-    store._ensure_usage()
-    with store._rw.reading():
-        usage = store._usage.copy()
-        hist = store._weight_hist.copy()
-        items = store._rows - store._removed_count
-        removed_pending = store._removed_count
-        memory = store._nbytes()
-        with store._served_lock:
-            served = dict(store._served)
-        plan = store.plan
-        watch = store._watch
-        target = false_hit
-        if target is None and watch is not None:
-            target = watch.false_hit
-        if target is None and plan is not None:
-            target = plan.target_false_hit
-        warn = warn_fraction if warn_fraction is not None else (watch.warn_fraction if watch else 0.8)
-        q = _nominal_weight(store, _weights(hist)[1])
-        per_uniform = cap_uniform = None
-        if q is not None:
-            per_uniform, cap_uniform = _uniform(store, q, target)
-        est = _usage_estimate(store, q, usage, items, refresh_fraction, refresh)
+    target = false_hit
+    if target is None:
+        target = stats.watch_false_hit
+    if target is None and stats.plan is not None:
+        target = stats.plan.target_false_hit
+    warn = warn_fraction if warn_fraction is not None else (stats.watch_warn_fraction or 0.8)
+    q = _nominal_weight(stats, _weights(stats.weight_hist)[1])
+    per_uniform = cap_uniform = None
+    if q is not None:
+        per_uniform, cap_uniform = _uniform(stats, memo, q, target)
+    est = _usage_estimate(stats, samples, memo, q, refresh_fraction, refresh)
     return derive(
-        bits=store.bits, threshold=store.threshold, sample_size=store.sample_size, detectors=store.detectors, plan=plan,
-        target=target, warn=warn, usage=usage, hist=hist, items=items, removed_pending=removed_pending, q=q,
-        per_uniform=per_uniform, cap_uniform=cap_uniform, estimate=est, measurement=store._measurement, served=served,
-        memory=memory, started=started,
+        bits=stats.bits, threshold=stats.threshold, sample_size=stats.sample_size, detectors=stats.detectors,
+        plan=stats.plan, target=target, warn=warn, usage=stats.usage, hist=stats.weight_hist, items=stats.items,
+        removed_pending=stats.removed_pending, q=q, per_uniform=per_uniform, cap_uniform=cap_uniform, estimate=est,
+        measurement=stats.measurement, served=stats.served, memory=stats.memory_bytes, started=started,
     )
 
 
@@ -485,64 +485,64 @@ def classify(items, limit, warn_fraction) -> str:
 # ---------------------------------------------------------------------------
 
 
-def measure_false_hits(store, queries=10_000, *, source="uniform", seed=None, batch=2048) -> FalseHitMeasurement:
-    """Random unrelated queries against ``store`` (call :meth:`Store.measure_false_hits`).
+def check_measurement(queries, source) -> None:
+    """``ValueError`` for a measurement request that cannot run, before any work."""
+    if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
+        raise ValueError(f"measure_false_hits: queries={queries!r} must be a positive integer")
+    if source not in ("uniform", "usage"):
+        raise ValueError(f"measure_false_hits: source={source!r} must be 'uniform' or 'usage'")
 
-    Queries go through the ordinary batch path ``batch`` at a time; they do
-    not count as served queries. O(queries · query cost).
+
+def measure_false_hits(report: Health, usage: np.ndarray, count_hits, queries=10_000, *, source="uniform",
+                       seed=None, batch=2048) -> FalseHitMeasurement:
+    """Random unrelated queries through ``count_hits``: the measured false-hit rate.
+
+    ``report`` is the store's current :class:`Health`, ``usage`` its bit
+    usage (``StoreStats.usage``), ``count_hits(codes)`` the number of hits
+    of each query of a batch, not counted as served (the store supplies
+    it). Queries go ``batch`` at a time. O(queries · query cost).
 
     Examples
     --------
     >>> from sparseindex import Codes, Store
     >>> store = Store(256, threshold=3, seed=1); _ = store.add(Codes.random(500, 256, 8, seed=1))
-    >>> r = measure_false_hits(store, 300, seed=4, batch=100)
+    >>> r = store.measure_false_hits(300, seed=4)
     >>> r.queries, r.source, store.health().queries_total
     (300, 'uniform', 0)
     """
     from .codes import Codes
 
-    if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
-        raise ValueError(f"measure_false_hits: queries={queries!r} must be a positive integer")
-    if source not in ("uniform", "usage"):
-        raise ValueError(f"measure_false_hits: source={source!r} must be 'uniform' or 'usage'")
+    check_measurement(queries, source)
     if seed is None:
         seed = int(np.random.SeedSequence().generate_state(1)[0])
     started = time.perf_counter()
-    health = compute(store)
-    q = health.query_weight
-    if q is None or health.items == 0:
+    q, items = report.query_weight, report.items
+    if q is None or items == 0:
         raise ValueError("measure_false_hits: the store is empty; there is nothing to measure")
     if source == "uniform":
-        unrelated = Codes.random(int(queries), store.bits, q, seed=seed)
-        predicted = health.per_code_uniform
+        unrelated = Codes.random(int(queries), report.bits, q, seed=seed)
+        predicted = report.per_code_uniform
     else:
-        store._ensure_usage()
-        with store._rw.reading():
-            usage = store._usage.copy()
         if not usage.any():
             raise ValueError("measure_false_hits: no bit is in use; a usage measurement needs stored codes")
-        p = model.usage_bernoulli(usage_frequencies(usage, health.items)[0], q)
-        unrelated = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=store.bits)
-        predicted = health.per_code_usage
+        p = model.usage_bernoulli(usage_frequencies(usage, items)[0], q)
+        unrelated = Codes.from_indices(model.sample_usage_queries(p, q, int(queries), seed=seed), bits=report.bits)
+        predicted = report.per_code_usage
     queries_hit, hits = 0, 0
-    items = health.items
     for a in range(0, int(queries), batch):
-        result = store._query_batch(unrelated[a : a + batch], 0)
-        counts = result.counts
+        counts = count_hits(unrelated[a : a + batch])
         queries_hit += int(np.count_nonzero(counts))
         hits += int(counts.sum())
     n = int(queries)
     low, high = model.clopper_pearson(queries_hit, n)
     upper = model.clopper_pearson_upper(queries_hit, n)
-    result = FalseHitMeasurement(
+    return FalseHitMeasurement(
         source=source, queries=n, query_weight=q, items=items, queries_hit=queries_hit, hits=hits,
         rate=queries_hit / n, low=float(low), high=float(high), upper=float(upper), hits_per_query=hits / n,
         predicted_rate=None if predicted is None else float(model.store_false_hit(min(1.0, predicted), items)),
         predicted_hits=None if predicted is None else float(items * predicted),
         seed=int(seed), seconds=time.perf_counter() - started,
     )
-    store._measurement = result
-    return result
 
 
 # ---------------------------------------------------------------------------
@@ -550,8 +550,11 @@ def measure_false_hits(store, queries=10_000, *, source="uniform", seed=None, ba
 # ---------------------------------------------------------------------------
 
 
-class _Watch:
-    """Status alerts of one store: a callback per change, a warning past the limit."""
+class Watch:
+    """Status alerts of one store: a callback per change, a warning past the limit.
+
+    The store calls :meth:`changed` after each committed mutation.
+    """
 
     def __init__(self, callback, warn_fraction, false_hit):
         self.callback = callback
@@ -562,16 +565,15 @@ class _Watch:
         self._churn_at = 0
         self._items_at = 0
 
-    def changed(self, store, refresh_fraction=0.05) -> None:
+    def changed(self, items: int, churn: int, report, refresh_fraction=0.05) -> None:
+        """Re-evaluate after a change to ``items`` live codes; ``report()`` makes the full :class:`Health`."""
         # Fast path for streams of small adds: the limit only moves when
         # the usage-aware estimate refreshes, so until then the status is
         # items against the last limit; a full report only on a change.
-        items = len(store)
-        churn = _churn(store)
         fresh = abs(churn - self._churn_at) < max(1, refresh_fraction * max(items, self._items_at))
         if self._limit is not None and fresh and classify(items, self._limit, self.warn_fraction) == self.status:
             return
-        health = compute(store, refresh_fraction=refresh_fraction)
+        health = report()
         if not fresh or self._limit is None:
             self._churn_at, self._items_at = churn, items
         self._limit = health.limit

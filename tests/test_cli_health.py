@@ -40,7 +40,7 @@ def test_json_and_openmetrics(saved, capsys):
     assert code == 0 and out.endswith("# EOF\n") and "sparseindex_measured_queries" in out
 
 
-def test_probe_and_plot(saved, capsys, tmp_path):
+def test_measure_and_plot(saved, capsys, tmp_path):
     pytest.importorskip("matplotlib")
     path, _ = saved
     png = tmp_path / "headroom.png"

@@ -228,7 +228,7 @@ def test_errors_match_a_single_store(client):
             cl.ShardedStore(client, 2, BITS, threshold=9, sample_size=4)
 
 
-def test_health_probe_and_alerts_match_a_single_store(client):
+def test_health_measurement_and_alerts_match_a_single_store(client):
     seen_ref, seen = [], []
     targets = dict(false_hit=0.1, capacity=1500, noise=0.2)  # a rate a measurement can measure
     ref = Store.for_target(BITS, WEIGHT, seed=21, on_status=lambda a, b, h: seen_ref.append((a, b)), **targets)
@@ -243,7 +243,7 @@ def test_health_probe_and_alerts_match_a_single_store(client):
                 s.add(batch)
                 ref.add(batch)
         assert seen == seen_ref and seen_ref[-1][1] == "saturated"              # reference: single Store's alerts
-        assert any(issubclass(w.category, SaturationWarning) and "sharded" in str(w.message) for w in caught)
+        assert any(issubclass(w.category, SaturationWarning) and "past its limit" in str(w.message) for w in caught)
         s.remove(np.arange(0, 300))
         ref.remove(np.arange(0, 300))
         for refresh in (False, True):

@@ -27,7 +27,7 @@ def zipf_codes(n, bits, weight, exponent, seed):
     return Codes.from_indices(np.array(rows), bits=bits)
 
 
-def test_probe_interval_is_clopper_pearson():
+def test_measurement_interval_is_clopper_pearson():
     store = Store(256, threshold=3, seed=1)
     store.add(Codes.random(3_000, 256, 8, seed=1))
     r = store.measure_false_hits(3_000, seed=4)
@@ -39,7 +39,7 @@ def test_probe_interval_is_clopper_pearson():
     assert r.upper == pytest.approx(stats.beta.ppf(0.95, k + 1, n - k), rel=1e-9)
 
 
-def test_probe_without_hits_reports_the_upper_bound():
+def test_measurement_without_hits_reports_the_upper_bound():
     store = Store(2048, threshold=20, seed=2)
     store.add(Codes.random(1_000, 2048, 40, seed=2))
     r = store.measure_false_hits(1_000, seed=1)
@@ -48,7 +48,7 @@ def test_probe_without_hits_reports_the_upper_bound():
     assert "95% upper bound" in str(r) and store.health().measurement is r
 
 
-def test_uniform_probe_matches_the_hypergeometric_prediction():
+def test_uniform_measurement_matches_the_hypergeometric_prediction():
     # small widths inflate the rate to ~1e-2 so that a measurement sees it
     bits, weight, threshold, n_codes, queries = 256, 8, 4, 150, 40_000
     store = Store(bits, threshold=threshold, seed=3)
@@ -224,7 +224,7 @@ def test_health_exports(tmp_path):
     assert h.weight_offset == 0.0 and h.target_recall == store.plan.target_recall
 
 
-def test_health_and_probe_argument_errors():
+def test_health_and_measurement_argument_errors():
     store = Store(64, threshold=2, seed=11)
     with pytest.raises(ValueError, match="store is empty"):
         store.measure_false_hits(10)
@@ -254,3 +254,24 @@ def test_a_loaded_planned_store_still_warns_past_the_limit(tmp_path):
     loaded.add(Codes.random(1, 256, 8, seed=13))  # first change: the level is taken here
     with pytest.warns(SaturationWarning, match="past its limit"):
         loaded.add(Codes.random(int(cap * 0.3), 256, 8, seed=14))
+
+
+def test_a_writer_never_waits_for_a_report_being_modelled():
+    """The usage-aware model runs outside the store's lock: an add made while it runs completes."""
+    import threading
+
+    store = Store(128, threshold=3, seed=2)
+    store.add(Codes.random(5_000, 128, 8, seed=3))   # enough codes per bit for the usage-aware estimate
+    real = store.detector_samples
+    finished = []
+
+    def samples_while_a_writer_adds(count, *, seed):
+        writer = threading.Thread(target=lambda: finished.append(store.add(Codes.random(10, 128, 8, seed=4))))
+        writer.start()
+        writer.join(timeout=60)   # a report holding the lock would keep the writer waiting here
+        return real(count, seed=seed)
+
+    store.detector_samples = samples_while_a_writer_adds
+    h = store.health(refresh=True)
+    assert finished and len(finished[0]) == 10
+    assert h.usage_codes_sampled > 0 and len(store) == 5_010

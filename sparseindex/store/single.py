@@ -21,6 +21,7 @@ import numpy as np
 
 from .._numba import kernels as _kernels
 from . import format as _persist
+from .. import health
 from .._numba.config import PARALLEL_LOCK
 from .guard import ReadWriteLock
 from .bank import BLOCK_SPAN, DetectorBank
@@ -296,7 +297,8 @@ class Store:
         self._served_lock = threading.Lock()
         self._mutations = 0
         self._measurement = None
-        self._watch = None  # a health._Watch once watch() or for_target set one
+        self._watch = None  # a health.Watch once watch() or for_target set one
+        self._health_memo = health.HealthMemo()
 
     @classmethod
     def for_target(
@@ -476,7 +478,61 @@ class Store:
     def _after_change(self) -> None:
         """Re-evaluate the status after a mutation; alerts fire here, outside every lock."""
         if self._watch is not None:
-            self._watch.changed(self)
+            with self._served_lock:
+                churn = self._served["added"] + self._served["removed"]
+            self._watch.changed(len(self), churn, self.health)
+
+    def stats(self) -> "health.StoreStats":
+        """A snapshot of the store's figures: parameters, plan, counts, bit usage, weights, counters, memory.
+
+        Copies taken under the read lock (O(bits)); a loaded store counts
+        its bit usage once, on the first call. :meth:`health` is computed
+        from it outside every lock.
+
+        Examples
+        --------
+        >>> s = Store(64, threshold=2, seed=0); _ = s.add([[1, 2, 3], [3, 4, 5, 6]])
+        >>> st = s.stats()
+        >>> st.items, int(st.usage[3]), st.weight_hist[3:5].tolist(), st.served["added"]
+        (2, 2, [1, 1], 2)
+        """
+        self._ensure_usage()
+        with self._rw.reading():
+            with self._served_lock:
+                served = dict(self._served)
+            watch = self._watch
+            return health.StoreStats(
+                bits=self._bits, threshold=self._threshold, sample_size=self._sample_size,
+                detectors=self._detectors, seed=self._seed, plan=self._plan, items=len(self),
+                removed_pending=self._removed_count, usage=self._usage.copy(), weight_hist=self._weight_hist.copy(),
+                memory_bytes=self._nbytes(), served=served, measurement=self._measurement,
+                watch_false_hit=None if watch is None else watch.false_hit,
+                watch_warn_fraction=None if watch is None else watch.warn_fraction,
+            )
+
+    def detector_samples(self, count, *, seed) -> list:
+        """The detector samples of up to ``count`` live codes chosen by ``seed``: one (D, s) array each.
+
+        The codes are a uniform sample without replacement, drawn with
+        ``numpy.random.default_rng([store seed, seed])`` from the live codes
+        in id order and returned in id order, so a store and a sharded store
+        of the same codes pick the same ones. O(count · weight).
+
+        Examples
+        --------
+        >>> s = Store(64, threshold=2, sample_size=2, detectors=3, seed=0); _ = s.add([[1, 2, 3], [3, 4, 5, 6]])
+        >>> [a.shape for a in s.detector_samples(5, seed=1)]
+        [(3, 2), (3, 2)]
+        """
+        with self._rw.reading():
+            rows = np.flatnonzero(~self._removed[: self._rows])
+            rng = np.random.default_rng([self._seed, int(seed)])
+            pick = np.sort(rng.choice(rows, size=min(int(count), rows.shape[0]), replace=False))
+            words, weights, ids = self._words[pick], self._weights[pick], self._ids_of_rows(pick)
+        indptr, indices = _kernels.unpack_indices(words, weights.astype(np.int64))
+        det_indptr, det_bits = self._bank.sample(indptr, indices, ids)
+        D = self._detectors
+        return [det_bits[det_indptr[k * D] : det_indptr[(k + 1) * D]].reshape(D, -1) for k in range(pick.shape[0])]
 
     # -- mutation -----------------------------------------------------------
 
@@ -964,13 +1020,12 @@ class Store:
         >>> h.status, h.items, h.limit >= 50_000
         ('healthy', 1000, True)
         """
-        from .. import health
-
         if false_hit is not None:
             false_hit = _check_chance("false_hit", false_hit)
         if warn_fraction is not None:
             warn_fraction = _check_fraction(warn_fraction)
-        return health.compute(self, false_hit=false_hit, warn_fraction=warn_fraction, refresh=bool(refresh))
+        return health.compute(self.stats(), self.detector_samples, self._health_memo, false_hit=false_hit,
+                              warn_fraction=warn_fraction, refresh=bool(refresh))
 
     def measure_false_hits(self, queries=10_000, *, source="uniform", seed=None):
         """Run random unrelated queries and measure the false-hit rate.
@@ -991,9 +1046,13 @@ class Store:
         >>> r.queries, 0 < r.rate < 1, r.low <= r.rate <= r.high
         (2000, True, True)
         """
-        from .. import health
-
-        return health.measure_false_hits(self, queries, source=source, seed=seed)
+        health.check_measurement(queries, source)
+        stats = self.stats()
+        result = health.measure_false_hits(
+            self.health(), stats.usage, lambda batch: self._query_batch(batch, 0).counts, queries,
+            source=source, seed=seed)
+        self._measurement = result
+        return result
 
     def watch(self, on_status=None, *, warn_fraction=0.8, false_hit=None) -> None:
         """Alert on status changes: ``on_status(previous, current, health)``.
@@ -1018,8 +1077,6 @@ class Store:
         >>> seen
         [('healthy', 'filling'), ('filling', 'saturated')]
         """
-        from .. import health
-
         if on_status is not None and not callable(on_status):
             raise TypeError(f"on_status={on_status!r} must be callable or None")
         warn_fraction = _check_fraction(warn_fraction)
@@ -1027,9 +1084,9 @@ class Store:
             false_hit = _check_chance("false_hit", false_hit)
         elif self._plan is None:
             raise ValueError("watch: this store has no plan; give false_hit=... (target chance per query)")
-        watcher = health._Watch(on_status, warn_fraction, false_hit)
+        watcher = health.Watch(on_status, warn_fraction, false_hit)
         self._watch = watcher
-        watcher.status = health.compute(self).status
+        watcher.status = self.health().status
 
     # -- persistence ------------------------------------------------------
 
@@ -1142,9 +1199,7 @@ class Store:
         if state.plan is not None:
             # a planned store warns past the limit, as for_target's does; the
             # level is first taken at the first change (not at load: O(N))
-            from ..health import _Watch
-
-            store._watch = _Watch(None, 0.8, None)
+            store._watch = health.Watch(None, 0.8, None)
         return store
 
     # -- invariants -------------------------------------------------------
