@@ -23,7 +23,7 @@ from scipy.sparse.csgraph import connected_components
 
 from sparseindex import Codes
 from sparseindex.near_duplicates import banding as _banding
-from sparseindex.near_duplicates import unionfind as _unionfind
+from sparseindex._numba import unionfind as _unionfind
 from sparseindex.near_duplicates.banding import (
     MAX_HASHES,
     MAX_ROWS,

@@ -135,18 +135,20 @@ def test_numba_loads_on_the_first_kernel_call_and_every_kernel_is_swapped_in():
         from sparseindex import Codes, Store, model
         from sparseindex.near_duplicates import banding as _banding
         from sparseindex._numba import kernels as _kernels
-        from sparseindex.near_duplicates import unionfind as _unionfind
+        from sparseindex._numba import unionfind as _unionfind
+        from sparseindex._numba import banding as _banding_kernels, usage as _usage_kernels
         store = Store(64, threshold=2, seed=0)
         store.add([[1, 2, 3], [2, 3, 4]])
         assert store.query([2, 3]).ids.tolist() == [0, 1]
         import numba
         from numba.core.registry import CPUDispatcher
-        for module in (_kernels, _banding, _unionfind, model):
+        for module in (_kernels, _banding, _banding_kernels, _unionfind, _usage_kernels, model):
             left = [k for k, v in vars(module).items() if type(v).__name__ == "_Deferred"]
             assert not left, (module.__name__, left)
         assert isinstance(_kernels.query_one, CPUDispatcher)
-        assert _banding.popcount64 is _kernels.popcount64  # imported by name, swapped too
-        assert _kernels.prange is numba.prange and _banding.prange is numba.prange
+        assert _banding_kernels.popcount64 is _kernels.popcount64  # imported by name, swapped too
+        assert _banding.bit_usage is _banding_kernels.bit_usage and isinstance(_banding.bit_usage, CPUDispatcher)
+        assert _kernels.prange is numba.prange and _banding_kernels.prange is numba.prange
         print("ok")
         """
     )

@@ -41,7 +41,7 @@ if DISABLE_JIT:
     def popcount64(x):
         return int(x).bit_count()
 
-    def _mix64(z):
+    def mix64(z):
         """splitmix64 finaliser (Steele, Lea & Flood, OOPSLA 2014)."""
         z = int(z) & _MASK64
         z = ((z ^ (z >> 30)) * _MIX1) & _MASK64
@@ -49,12 +49,12 @@ if DISABLE_JIT:
         return np.uint64(z ^ (z >> 31))
 
     def _detector_state(seed, code_id, j):
-        base = int(_mix64(int(seed) ^ int(_mix64(int(code_id)))))
-        return np.uint64(int(_mix64((base + (int(j) + 1) * _GOLDEN) & _MASK64)))
+        base = int(mix64(int(seed) ^ int(mix64(int(code_id)))))
+        return np.uint64(int(mix64((base + (int(j) + 1) * _GOLDEN) & _MASK64)))
 
     def _rng_next(state):
         state = (int(state) + _GOLDEN) & _MASK64
-        return np.uint64(state), _mix64(state)
+        return np.uint64(state), mix64(state)
 
     def prefetch(array, index):
         """A cache hint: nothing to do in plain Python."""
@@ -115,7 +115,7 @@ else:
         return _ctpop_u64(x)
 
     @inline_kernel
-    def _mix64(z):
+    def mix64(z):
         """splitmix64 finaliser (Steele, Lea & Flood, OOPSLA 2014)."""
         z = np.uint64(z)
         z = (z ^ (z >> np.uint64(30))) * np.uint64(_MIX1)
@@ -124,13 +124,13 @@ else:
 
     @inline_kernel
     def _detector_state(seed, code_id, j):
-        base = _mix64(np.uint64(seed) ^ _mix64(np.uint64(code_id)))
-        return _mix64(base + (np.uint64(j) + np.uint64(1)) * np.uint64(_GOLDEN))
+        base = mix64(np.uint64(seed) ^ mix64(np.uint64(code_id)))
+        return mix64(base + (np.uint64(j) + np.uint64(1)) * np.uint64(_GOLDEN))
 
     @inline_kernel
     def _rng_next(state):
         state = state + np.uint64(_GOLDEN)
-        return state, _mix64(state)
+        return state, mix64(state)
 
 
 @inline_kernel

@@ -37,8 +37,10 @@ from dataclasses import dataclass
 import numpy as np
 
 from .._numba import kernels as _kernels
-from .._numba.config import PARALLEL_LOCK, kernel, parallel_kernel, prange, thread_count
-from .._numba.kernels import _mix64, popcount64
+from .._numba.banding import (band_keys_kernel, bit_usage, gather_matches, pair_overlaps, run_pair_counts,
+                              verify_positions)
+from .._numba.config import PARALLEL_LOCK, thread_count
+from .._numba.kernels import mix64
 
 __all__ = [
     "s_curve",
@@ -284,116 +286,9 @@ def hash_salts(seed: int, count: int) -> np.ndarray:
     state = int(seed) & _MASK64
     for k in range(count):
         state = (state + _GOLDEN) & _MASK64
-        out[k] = _mix64(np.uint64(state))
+        out[k] = mix64(np.uint64(state))
     return out
 
-
-# ---------------------------------------------------------------------------
-# kernels
-# ---------------------------------------------------------------------------
-
-
-@kernel
-def pair_overlaps(words, lo, hi):
-    """Exact overlap (AND + popcount) of rows ``lo[t]`` and ``hi[t]``."""
-    out = np.empty(lo.shape[0], dtype=np.int64)
-    for t in range(lo.shape[0]):
-        a = words[lo[t]]
-        b = words[hi[t]]
-        total = 0
-        for w in range(a.shape[0]):
-            total += popcount64(a[w] & b[w])
-        out[t] = total
-    return out
-
-
-@parallel_kernel
-def band_keys_kernel(indptr, indices, salts, bands, rows):
-    """Band keys of CSR codes: ``keys[j, i]`` folds code i's minima of hashes j*rows .. j*rows+rows-1."""
-    n = indptr.shape[0] - 1
-    keys = np.empty((bands, n), dtype=np.uint64)
-    top = np.uint64(0xFFFFFFFFFFFFFFFF)
-    for i in prange(n):
-        a = indptr[i]
-        w = indptr[i + 1] - a
-        mixed = np.empty(w, dtype=np.uint64)
-        for t in range(w):
-            mixed[t] = _mix64(np.uint64(indices[a + t]))
-        for j in range(bands):
-            key = np.uint64(0)
-            for t in range(rows):
-                salt = salts[j * rows + t]
-                low = top
-                for s in range(w):
-                    h = _mix64(salt ^ mixed[s])
-                    if h < low:
-                        low = h
-                key = _mix64(key ^ low)
-            keys[j, i] = key
-    return keys
-
-
-@kernel
-def run_pair_counts(sorted_keys):
-    """For each position of a sorted key array, how many later positions share its key."""
-    n = sorted_keys.shape[0]
-    counts = np.zeros(n, dtype=np.int64)
-    p = 0
-    while p < n:
-        q = p + 1
-        while q < n and sorted_keys[q] == sorted_keys[p]:
-            q += 1
-        for t in range(p, q):
-            counts[t] = q - t - 1
-        p = q
-    return counts
-
-
-@parallel_kernel
-def verify_positions(order, positions, offsets, counts, words, out):
-    """Overlap of every candidate pair of the given sorted positions, into ``out``.
-
-    Position ``p`` pairs ``order[p]`` with ``order[p + 1 .. p + counts[p]]``;
-    its overlaps go to ``out[offsets[k] ..]`` where ``positions[k] == p``.
-    """
-    n_words = words.shape[1]
-    for k in prange(positions.shape[0]):
-        p = positions[k]
-        a = words[order[p]]
-        base = offsets[k]
-        for t in range(counts[p]):
-            b = words[order[p + 1 + t]]
-            total = 0
-            for w in range(n_words):
-                total += popcount64(a[w] & b[w])
-            out[base + t] = total
-    return out
-
-
-@kernel
-def gather_matches(order, positions, offsets, counts, overlaps, min_overlap):
-    """The verified pairs (low row, high row, overlap) with overlap >= min_overlap."""
-    found = 0
-    for t in range(overlaps.shape[0]):
-        if overlaps[t] >= min_overlap:
-            found += 1
-    lo = np.empty(found, dtype=np.int64)
-    hi = np.empty(found, dtype=np.int64)
-    ov = np.empty(found, dtype=np.int64)
-    f = 0
-    for k in range(positions.shape[0]):
-        p = positions[k]
-        a = order[p]
-        base = offsets[k]
-        for t in range(counts[p]):
-            z = overlaps[base + t]
-            if z >= min_overlap:
-                b = order[p + 1 + t]
-                lo[f] = min(a, b)
-                hi[f] = max(a, b)
-                ov[f] = z
-                f += 1
-    return lo, hi, ov
 
 
 # ---------------------------------------------------------------------------
@@ -496,26 +391,6 @@ def candidate_pairs(words, weights, *, min_overlap, bands, rows, seed, progress=
     ov = np.concatenate([p[2] for p in pieces])
     flat, first = np.unique(lo * np.int64(n) + hi, return_index=True)
     return flat // n, flat % n, ov[first], checked
-
-
-@kernel
-def bit_usage(words, bits):
-    """How many rows set each bit. O(set bits).
-
-    Examples
-    --------
-    >>> bit_usage(np.array([[0b0111], [0b1110]], dtype=np.uint64), 4).tolist()
-    [1, 2, 2, 1]
-    """
-    counts = np.zeros(bits, dtype=np.int64)
-    for r in range(words.shape[0]):
-        for w in range(words.shape[1]):
-            x = words[r, w]
-            while x != np.uint64(0):
-                low = x & (~x + np.uint64(1))
-                counts[w * 64 + np.int64(popcount64(low - np.uint64(1)))] += 1
-                x = x ^ low
-    return counts
 
 
 def index_seconds(words, bits, *, threads=None) -> float:

@@ -49,7 +49,7 @@ from numbers import Integral, Real
 import numpy as np
 
 from . import banding as _banding
-from . import unionfind as _unionfind
+from .._numba import unionfind as _unionfind
 from .._numba.config import thread_count
 from ..codes import Codes, as_codes
 from ..store.single import Store

@@ -22,8 +22,8 @@ from __future__ import annotations
 
 import numpy as np
 
-from .._numba.config import kernel
-from .._numba.kernels import _mix64
+from .config import kernel
+from .kernels import mix64
 
 __all__ = ["row_hashes", "exact_copy_owners", "component_roots", "greedy_first"]
 
@@ -46,7 +46,7 @@ def row_hashes(words):
     for r in range(n):
         h = np.uint64(words.shape[1])
         for w in range(words.shape[1]):
-            h = _mix64(h ^ words[r, w])
+            h = mix64(h ^ words[r, w])
         out[r] = h
     return out
 
@@ -58,11 +58,11 @@ def exact_copy_owners(order, later, words):
     ``order`` sorts the rows by hash *stably*, so inside a run of one hash
     the rows come in index order and the first of each distinct code is
     its smallest row; ``later[t]`` counts the positions after ``t`` in its
-    run (``_banding.run_pair_counts`` of the sorted hashes).
+    run (``banding.run_pair_counts`` of the sorted hashes).
 
     Examples
     --------
-    >>> from sparseindex.near_duplicates.banding import run_pair_counts
+    >>> from sparseindex._numba.banding import run_pair_counts
     >>> words = np.array([[5], [7], [5], [5]], dtype=np.uint64)
     >>> h = row_hashes(words)
     >>> order = np.argsort(h, kind="stable")
