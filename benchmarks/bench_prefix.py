@@ -78,7 +78,7 @@ def run(args):
     store.add(codes)
     bank = store._bank
     queries = Codes.random(n_q * len(SETTINGS), BITS, WEIGHT, seed=12)
-    indptr, q_all = queries._csr()
+    indptr, q_all = queries.to_csr()
     old_threads = numba.get_num_threads()
     numba.set_num_threads(1)  # the serial kernel: one thread's costs
     gc.disable()  # a collection just before a query slows it several-fold (caches, allocator), a noise here

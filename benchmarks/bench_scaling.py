@@ -110,7 +110,7 @@ def _batch(store, queries, threads):
 def _counted_share(store, queries):
     """Mean share of the query bits' postings the scan counts (below 1 when prefix filtering applies)."""
     bank = store._bank
-    indptr, q_all = queries._csr()
+    indptr, q_all = queries.to_csr()
     shares = []
     for i in range(len(queries)):
         q_bits = q_all[indptr[i] : indptr[i + 1]]

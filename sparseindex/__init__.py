@@ -17,31 +17,12 @@ from . import model
 from .codes import Codes
 from .near_duplicates.labelling import NearDuplicateSummary, label_near_duplicates
 from .errors import SaturationWarning, FormatVersionWarning, ReadOnlyStoreError, StoreFormatError
+from .health import FalseHitMeasurement, Health
 from .model import PlanError
 from .model.planner import Plan, plan
-from .store.single import BatchHits, Hits, Store
+from .store import BatchHits, Hits, Store
+from .version import __version__
 
-__version__ = "0.1.0"
-
-#: Names imported on first use (PEP 562), so ``import sparseindex`` stays quick.
-_LAZY = {
-    "Health": ".health",
-    "FalseHitMeasurement": ".health",
-}
-
-
-def __getattr__(name):
-    if name in _LAZY:
-        import importlib
-
-        value = getattr(importlib.import_module(_LAZY[name], __name__), name)
-        globals()[name] = value
-        return value
-    raise AttributeError(f"module 'sparseindex' has no attribute {name!r}")
-
-
-def __dir__():
-    return sorted(set(globals()) | set(_LAZY))
 
 __all__ = ["Codes", "Store", "Hits", "BatchHits", "plan", "Plan", "PlanError", "model",
     "StoreFormatError", "ReadOnlyStoreError", "FormatVersionWarning", "SaturationWarning",

@@ -18,6 +18,7 @@ from numbers import Integral
 
 import numpy as np
 
+from . import validation
 from ._numba import kernels as _kernels
 
 __all__ = ["Codes", "as_codes", "as_code", "ACCEPTED_BATCH_FORMS", "ACCEPTED_SINGLE_FORMS"]
@@ -44,11 +45,28 @@ def _words_for(bits: int) -> int:
 
 
 def _check_bits(bits) -> int:
-    if isinstance(bits, (bool, np.bool_)) or not isinstance(bits, Integral):
-        raise TypeError(f"bits={bits!r} must be an integer")
-    if bits < 1:
-        raise ValueError(f"bits={bits} must be >= 1")
-    return int(bits)
+    return validation.integer("bits", bits, minimum=1)
+
+
+def _binary_csr(csr):
+    """(indptr, set-bit indices, bits) of a CSR matrix of 0/1 entries; explicit zeros dropped."""
+    rows, bits = csr.shape
+    bits = _check_bits(bits)
+    indptr = csr.indptr.astype(np.int64)
+    flat = _validated_indices(csr.indices, indptr, bits)
+    data = csr.data
+    bad = np.flatnonzero((data != 0) & (data != 1))
+    if bad.size:
+        p = int(bad[0])
+        raise ValueError(f"row {_row_of(indptr, p)}: value {data[p].item()!r} at bit index {int(flat[p])} is not 0 or 1")
+    keep = data != 0
+    if not keep.all():
+        rows_of_entries = np.repeat(np.arange(rows, dtype=np.int64), np.diff(indptr))
+        counts = np.bincount(rows_of_entries[keep], minlength=rows)
+        indptr = np.zeros(rows + 1, dtype=np.int64)
+        np.cumsum(counts, out=indptr[1:])
+        flat = flat[keep]
+    return indptr, flat, bits
 
 
 def _row_of(indptr: np.ndarray, position: int) -> int:
@@ -326,23 +344,7 @@ class Codes:
             raise TypeError(f"from_scipy takes a scipy.sparse matrix or array, got {type(matrix).__name__}")
         if matrix.ndim != 2:
             raise ValueError(f"from_scipy takes a 2-D sparse matrix, got shape {matrix.shape}")
-        rows, bits = matrix.shape
-        bits = _check_bits(bits)
-        csr = sp.csr_matrix(matrix, copy=True)
-        indptr = csr.indptr.astype(np.int64)
-        flat = _validated_indices(csr.indices, indptr, bits)
-        data = csr.data
-        bad = np.flatnonzero((data != 0) & (data != 1))
-        if bad.size:
-            p = int(bad[0])
-            raise ValueError(f"row {_row_of(indptr, p)}: value {data[p].item()!r} at bit index {int(flat[p])} is not 0 or 1")
-        keep = data != 0
-        if not keep.all():
-            rows_of_entries = np.repeat(np.arange(rows, dtype=np.int64), np.diff(indptr))
-            counts = np.bincount(rows_of_entries[keep], minlength=rows)
-            indptr = np.zeros(rows + 1, dtype=np.int64)
-            np.cumsum(counts, out=indptr[1:])
-            flat = flat[keep]
+        indptr, flat, bits = _binary_csr(sp.csr_matrix(matrix, copy=True))
         words, dup_row, dup_value = _kernels.pack_indices(indptr, flat, _words_for(bits))
         if dup_row >= 0:
             raise ValueError(f"row {int(dup_row)}: duplicate entry at bit index {int(dup_value)}")
@@ -363,14 +365,9 @@ class Codes:
         [5, 5, 5]
         """
         bits = _check_bits(bits)
-        count = int(count)
-        if count < 0:
-            raise ValueError(f"count={count} must be >= 0")
-        if not 0 <= weight <= bits:
-            raise ValueError(f"weight={weight} must be in 0..bits={bits}")
-        seed = int(seed)
-        if not 0 <= seed < 2**64:
-            raise ValueError(f"seed={seed} must be in 0..2**64-1")
+        count = validation.integer("count", count, minimum=0, what="Codes.random")
+        weight = validation.integer("weight", weight, minimum=0, maximum=bits, what="Codes.random")
+        seed = validation.integer("seed", seed, minimum=0, maximum=validation.SEED_LIMIT - 1, what="Codes.random")
         return cls._wrap(_kernels.random_words(count, bits, int(weight), np.uint64(seed)), bits)
 
     # -- exits --------------------------------------------------------------
@@ -401,7 +398,14 @@ class Codes:
         view.flags.writeable = False
         return view
 
-    def _csr(self) -> tuple[np.ndarray, np.ndarray]:
+    def to_csr(self) -> tuple[np.ndarray, np.ndarray]:
+        """``(indptr, indices)``: code ``i``'s set bits are ``indices[indptr[i]:indptr[i+1]]``, ascending (int64).
+
+        Examples
+        --------
+        >>> [a.tolist() for a in Codes.from_indices([[3, 1], [], [7]], bits=8).to_csr()]
+        [[0, 2, 2, 3], [1, 3, 7]]
+        """
         return _kernels.unpack_indices(self._words, self._weights)
 
     def to_indices(self) -> list[np.ndarray]:
@@ -414,7 +418,7 @@ class Codes:
         """
         if len(self) == 0:
             return []
-        indptr, flat = self._csr()
+        indptr, flat = self.to_csr()
         return np.split(flat, indptr[1:-1])
 
     def _le_bytes(self) -> np.ndarray:
@@ -446,7 +450,6 @@ class Codes:
         if bitorder not in ("little", "big"):
             raise ValueError(f"bitorder={bitorder!r} must be 'little' or 'big'")
         dtype = np.dtype(dtype)
-        rows = len(self)
         if dtype == np.uint64:
             if bitorder == "little":
                 return self._words.copy()
@@ -488,7 +491,7 @@ class Codes:
         """
         import scipy.sparse as sp
 
-        indptr, flat = self._csr()
+        indptr, flat = self.to_csr()
         data = np.ones(flat.size, dtype=bool)
         return sp.csr_array((data, flat, indptr), shape=(len(self), self._bits))
 
@@ -503,12 +506,13 @@ class Codes:
             i = int(item)
             if not -n <= i < n:
                 raise IndexError(f"code index {i} out of range for {n} codes")
-            return self[i : i + 1 if i != -1 else None]._csr()[1]
+            i %= n
+            return _kernels.unpack_indices(self._words[i : i + 1], self._weights[i : i + 1])[1]
         picked = self._words[item]
         if picked.ndim != 2:
             raise IndexError(f"unsupported index {item!r}")
         # Codes never change after construction, so a view can be shared
-        return Codes._wrap(np.ascontiguousarray(picked), self._bits)
+        return adopt_words(np.ascontiguousarray(picked), self._bits)
 
     def __iter__(self):
         return iter(self.to_indices())
@@ -516,7 +520,7 @@ class Codes:
     def __eq__(self, other):
         if not isinstance(other, Codes):
             return NotImplemented
-        return self._bits == other._bits and np.array_equal(self._words, other._words)
+        return self._bits == other.bits and np.array_equal(self._words, packed_words(other))
 
     __hash__ = None
 
@@ -547,13 +551,22 @@ class Codes:
         for k, b in enumerate(batches):
             if b.bits != bits:
                 raise ValueError(f"batch {k} has bits={b.bits}, expected {bits} like batch 0")
-        return Codes._wrap(np.concatenate([b._words for b in batches]), bits)
+        return adopt_words(np.concatenate([packed_words(b) for b in batches]), bits)
 
 
-def _quoted(value, limit: int = 60) -> str:
-    """``repr(value)``, cut to ``limit`` characters, for error messages."""
-    text = repr(value)
-    return text if len(text) <= limit else text[: limit - 3] + "..."
+# The two friends below are how the rest of the package reaches a batch's
+# packed rows: kernels need the array itself, since a read-only view is a
+# separate numba type (compiled again), and a fresh array needs no copy.
+
+
+def packed_words(codes: Codes) -> np.ndarray:
+    """The batch's packed rows themselves (not a read-only view), for kernels; never write to them."""
+    return codes._words
+
+
+def adopt_words(words: np.ndarray, bits: int) -> Codes:
+    """A Codes over a fresh, canonical uint64 array made by the caller, without a copy or a check."""
+    return Codes._wrap(words, bits)
 
 
 def _row_array(row, r: int) -> np.ndarray:
@@ -629,7 +642,7 @@ def as_codes(obj, bits: int, *, what: str = "codes") -> Codes:
                     raise TypeError(f"{what}: row {r} is a bitarray but other rows are not; do not mix forms")
             codes = Codes.from_indices(obj, bits)
     else:
-        raise TypeError(f"{what}: {_quoted(obj)} ({type(obj).__name__}) is not an accepted batch; "
+        raise TypeError(f"{what}: {validation.quoted(obj)} ({type(obj).__name__}) is not an accepted batch; "
                         f"accepted: {ACCEPTED_BATCH_FORMS}")
     if codes.bits != bits:
         raise ValueError(f"{what}: codes have bits={codes.bits}, expected bits={bits}")
@@ -656,7 +669,7 @@ def _plain_ints_code(obj, bits: int):
     else:
         return None
     words, ok = _kernels.pack_one_checked(arr, bits, _words_for(bits))
-    return Codes._wrap(words, bits) if ok else None
+    return adopt_words(words, bits) if ok else None
 
 
 def as_code(obj, bits: int, *, what: str = "code") -> Codes:
@@ -693,7 +706,7 @@ def as_code(obj, bits: int, *, what: str = "code") -> Codes:
     elif isinstance(obj, (Set, frozenset, list, tuple, range)):
         codes = Codes.from_indices([obj], bits)
     else:
-        raise TypeError(f"{what}: {_quoted(obj)} ({type(obj).__name__}) is not an accepted code; "
+        raise TypeError(f"{what}: {validation.quoted(obj)} ({type(obj).__name__}) is not an accepted code; "
                         f"accepted: {ACCEPTED_SINGLE_FORMS}")
     if codes.bits != bits:
         raise ValueError(f"{what}: code has bits={codes.bits}, expected bits={bits}")

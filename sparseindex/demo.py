@@ -40,11 +40,11 @@ import warnings
 import numpy as np
 
 from .near_duplicates import banding as _banding
-from . import model
+from . import model, validation
 from .codes import Codes
-from .near_duplicates.labelling import TqdmProgress, _near_copies, label_near_duplicates, planted_duplicates
+from .near_duplicates.labelling import TqdmProgress, label_near_duplicates, near_copies, planted_duplicates
 from .errors import SaturationWarning
-from .store.single import Store
+from .store import Store
 
 __all__ = ["run", "DemoResult", "Recall", "Stage", "DEFAULT_SIZE"]
 
@@ -308,9 +308,8 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
     Notes
     -----
-    At the default size it took 15 s on this project's 2-core machine once
-    the kernels were compiled and 43 s on the first run after installing,
-    31 s of it compiling them (the report says how long each part took).
+    The first run after installing also compiles the kernels (phase 0 of
+    the report says how long that took); the report times every phase.
 
     Examples
     --------
@@ -322,23 +321,44 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     >>> "not proof of identity" in report.getvalue()
     True
     """
-    if isinstance(size, bool) or not isinstance(size, (int, np.integer)) or size < MIN_SIZE:
-        raise ValueError(f"demo: size={size!r} must be an integer >= {MIN_SIZE:,}")
-    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed < 2**63:
-        raise ValueError(f"demo: seed={seed!r} must be an integer in 0..2**63-1")
-    size, seed = int(size), int(seed)
-    if progress is None:
-        progress = sys.stderr.isatty()
-    say = _Out(stream if stream is not None else sys.stdout)
-    folder = out if out is not None else tempfile.mkdtemp(prefix="sparseindex-demo-")
-    os.makedirs(folder, exist_ok=True)
-    streams = np.random.SeedSequence(seed).spawn(8)
-    rng = np.random.default_rng(streams[0])
-    code_seed = lambda k: int(np.random.default_rng(streams[k]).integers(2**63))  # noqa: E731
-    seconds = {}
-    t_start = time.perf_counter()
+    size = validation.integer("size", size, minimum=MIN_SIZE, what="demo")
+    seed = validation.integer("seed", seed, minimum=0, maximum=validation.SEED_LIMIT - 1, what="demo")
+    sc = _Scene(size, seed, sys.stderr.isatty() if progress is None else progress,
+                _Out(stream if stream is not None else sys.stdout),
+                out if out is not None else tempfile.mkdtemp(prefix="sparseindex-demo-"))
+    os.makedirs(sc.folder, exist_ok=True)
+    _introduce(sc)
+    for name, phase in (("kernels", _phase_kernels), ("plan", _phase_plan), ("build", _phase_build),
+                        ("recall", _phase_recall), ("near-duplicates", _phase_uploads), ("health", _phase_fill),
+                        ("save", _phase_save)):
+        t0 = time.perf_counter()
+        phase(sc)
+        sc.seconds[name] = time.perf_counter() - t0
+    _phase_plot(sc, plot)
+    return _conclude(sc)
 
-    say(f"sparseindex demo: the Quillmarsh weaving mill (an invented scenario; data made from seed {seed})")
+
+class _Scene:
+    """What the phases of one demo run share: the request, the printer, random streams, the store and results."""
+
+    def __init__(self, size, seed, progress, say, folder):
+        self.size, self.seed, self.progress, self.say, self.folder = size, seed, progress, say, folder
+        self.streams = np.random.SeedSequence(seed).spawn(8)
+        self.rng = np.random.default_rng(self.streams[0])
+        self.seconds = {}
+        self.t_start = time.perf_counter()
+        self.transitions = []
+        self.curve = []  # (codes stored, false hit per query now, headroom) after every batch added
+        self.stages = []
+        self.store = self.plan = self.catalogue = None
+
+    def code_seed(self, k) -> int:
+        return int(np.random.default_rng(self.streams[k]).integers(2**63))
+
+
+def _introduce(sc) -> None:
+    say = sc.say
+    say(f"sparseindex demo: the Quillmarsh weaving mill (an invented scenario; data made from seed {sc.seed})")
     say()
     say(f"Every bolt of cloth the mill weaves is scanned, and the scanner hashes the bolt's {WEIGHT} most")
     say(f"distinctive weave features into a {BITS:,}-bit code ({WEIGHT} set bits, {100 * WEIGHT / BITS:.1f}% of them).")
@@ -346,25 +366,28 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     say("bolts the scanners uploaded twice, and warn before chance matches become too common.")
     say()
 
-    t0 = time.perf_counter()
-    _warm_up(folder)
-    seconds["kernels"] = time.perf_counter() - t0
-    say(f"0. Kernels ready in {seconds['kernels']:.1f} s (compiled on the first run, then loaded from numba's cache)")
-    say()
 
-    # -- 1. plan ----------------------------------------------------------
-    transitions = []
+def _phase_kernels(sc) -> None:
+    t0 = time.perf_counter()
+    _warm_up(sc.folder)
+    sc.say(f"0. Kernels ready in {time.perf_counter() - t0:.1f} s (compiled on the first run, then loaded from "
+           "numba's cache)")
+    sc.say()
+
+
+def _phase_plan(sc) -> None:
+    say, size = sc.say, sc.size
 
     def on_status(previous, current, h):
-        transitions.append((previous, current, h.items))
+        sc.transitions.append((previous, current, h.items))
         say(f"   >> status {previous} -> {current} at {h.items:,} bolts ({100 * h.fill_fraction:.1f}% of the limit, "
             f"headroom {_n(h.headroom_codes)} bolts)")
 
     t0 = time.perf_counter()
-    store = Store.for_target(BITS, WEIGHT, false_hit=FALSE_HIT, capacity=size, noise=NOISE, recall=RECALL,
-                             seed=code_seed(1), warn_fraction=WARN_FRACTION, on_status=on_status)
-    seconds["plan"] = time.perf_counter() - t0
-    p = store.plan
+    sc.store = Store.for_target(BITS, WEIGHT, false_hit=FALSE_HIT, capacity=size, noise=NOISE, recall=RECALL,
+                                seed=sc.code_seed(1), warn_fraction=WARN_FRACTION, on_status=on_status)
+    planned_in = time.perf_counter() - t0
+    p = sc.plan = sc.store.plan
     lost = p.lost_bits
     say("1. Plan the store from targets (sparseindex.plan, through Store.for_target)")
     say(f"   targets: {size:,} bolts; at most {FALSE_HIT:g} false hits per query (the chance that an unknown")
@@ -377,73 +400,49 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     say(f"   model:   recall {p.recall:.5f} at the planned noise; {p.false_hit_per_code:.3g} false hits per bolt "
         f"per query;")
     say(f"            limit {_n(p.limit)} bolts at the target ({p.limit / size:.2f}x the {size:,} planned)")
-    say(f"   planned in {1e3 * seconds['plan']:.0f} ms")
+    say(f"   planned in {1e3 * planned_in:.0f} ms")
     say()
 
-    # -- 2. build ---------------------------------------------------------
+
+def _phase_build(sc) -> None:
+    say, size, store = sc.say, sc.size, sc.store
     say(f"2. Build the catalogue: {size:,} bolts")
-    catalogue = Codes.random(size, BITS, WEIGHT, seed=code_seed(2))
-    curve = []  # (codes stored, false hit per query now, headroom) after every batch added
+    sc.catalogue = catalogue = Codes.random(size, BITS, WEIGHT, seed=sc.code_seed(2))
     t0 = time.perf_counter()
     chunk = max(1_000, -(-size // 20))
-    with _bar(progress, size, "adding bolts") as bar:
+    with _bar(sc.progress, size, "adding bolts") as bar:
         for a in range(0, size, chunk):
             store.add(catalogue[a : a + chunk])
             bar.update(min(chunk, size - a))
             h = store.health()
-            curve.append((h.items, h.false_hit_now, h.headroom_codes))
-    seconds["build"] = time.perf_counter() - t0
-    say(f"   {size:,} bolts in {seconds['build']:.2f} s ({size / seconds['build']:,.0f} bolts/s); memory "
+            sc.curve.append((h.items, h.false_hit_now, h.headroom_codes))
+    took = time.perf_counter() - t0
+    say(f"   {size:,} bolts in {took:.2f} s ({size / took:,.0f} bolts/s); memory "
         f"{store.nbytes / 2**20:.1f} MiB ({store.nbytes / len(store):.0f} bytes per bolt)")
     say()
 
-    # -- 3. recall --------------------------------------------------------
-    t0 = time.perf_counter()
-    q_count = min(QUERIES, size)
-    sources = np.sort(rng.choice(size, size=q_count, replace=False)).astype(np.int64)
-    own = _rows(catalogue[sources])
+
+def _phase_recall(sc) -> None:
+    say, size, store, p, rng = sc.say, sc.size, sc.store, sc.plan, sc.rng
+    lost = p.lost_bits
+    sc.q_count = q_count = min(QUERIES, size)
+    sc.sources = sources = np.sort(rng.choice(size, size=q_count, replace=False)).astype(np.int64)
+    own = _rows(sc.catalogue[sources])
     heavy = int(math.ceil(0.4 * WEIGHT))
     kinds = [
-        ("rescan at the planned noise", WEIGHT - lost, lost,
-         _near_copies(own, np.full(q_count, lost), BITS, rng)),
-        ("rescan, heavier noise", WEIGHT - heavy, heavy,
-         _near_copies(own, np.full(q_count, heavy), BITS, rng)),
+        ("rescan at the planned noise", WEIGHT - lost, lost, near_copies(own, np.full(q_count, lost), BITS, rng)),
+        ("rescan, heavier noise", WEIGHT - heavy, heavy, near_copies(own, np.full(q_count, heavy), BITS, rng)),
         ("partial scan (part of the bolt)", WEIGHT - heavy, 0, _partial(own, WEIGHT - heavy, rng)),
     ]
     say(f"3. Recognise bolts from rescans ({q_count:,} queries of each kind; a hit is a catalogued bolt whose")
     say("   detector fires; 'false hits' are hits on other bolts)")
-    recalls = []
-    first_queries = None
-    for kind, kept, dust, rows in kinds:
-        queries = Codes.from_indices(rows, BITS)
-        if first_queries is None:
-            first_queries = queries
-        tq = time.perf_counter()
-        hits = store.query_many(queries)
-        ms = 1e3 * (time.perf_counter() - tq) / q_count
-        found = _found(hits, sources)
-        weight = kept + dust
-        sample_size = min(p.sample_size, WEIGHT)
-        predicted = float(model.recall(WEIGHT, sample_size, p.threshold, p.detectors, noise=(WEIGHT - kept) / WEIGHT))
-        per_code = float(model.false_hit_per_code(BITS, WEIGHT, sample_size, p.threshold, p.detectors, weight))
-        expected = q_count * (len(store) - 1) * per_code
-        r = Recall(kind, kept, dust, q_count, int(found.sum()), predicted, int(hits.counts.sum() - found.sum()),
-                   expected, ms)
-        recalls.append(r)
-        low, high = model.clopper_pearson(r.recalled, r.queries)
-        what = f"{kept} of {WEIGHT} features kept" + (f", {dust} dust features added" if dust else ", nothing added")
-        say(f"   {kind}: {what}")
-        say(f"     recall      {r.recall:.5f} measured ({r.recalled:,} of {r.queries:,}; 95% CI "
-            f"{low:.5f}-{high:.5f}); model {predicted:.5f}")
-        say(f"     false hits  {r.false_hits:,} measured in {r.queries:,} queries; model {expected:.2f} expected "
-            f"({_poisson_range(expected)})")
-        say(f"     latency     {ms:.3f} ms per query (query_many, batches of {q_count:,})")
-    example = store.query(first_queries[0])
+    sc.recalls = [_recall_kind(sc, *kind) for kind in kinds]
+    sc.first_queries = Codes.from_indices(kinds[0][3], BITS)
+    example = store.query(sc.first_queries[0])
     say(f"   e.g. the rescan of bolt {_bolt(sources[0])} hits "
         + (", ".join(f"{_bolt(i)} ({o} shared features)" for i, o in zip(example.ids[:3], example.overlaps[:3]))
            or "nothing"))
-    n_queries = _measure_size(store, UNKNOWN_QUERIES)
-    unknown = store.measure_false_hits(n_queries, seed=code_seed(3))
+    sc.unknown = unknown = store.measure_false_hits(_measure_size(store, UNKNOWN_QUERIES), seed=sc.code_seed(3))
     say(f"   unknown bolts (never catalogued): {unknown.queries:,} random codes of {WEIGHT} features")
     say(f"     false-hit rate  {unknown.rate:.5f} per query measured ({unknown.queries_hit:,} queries hit; "
         f"95% CI {unknown.low:.5f}-{unknown.high:.5f})")
@@ -451,22 +450,47 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     expected_unknown = unknown.predicted_hits * unknown.queries
     say(f"     false hits      {unknown.hits:,} measured in all; model {expected_unknown:.2f} expected "
         f"({_poisson_range(expected_unknown)})")
-    seconds["recall"] = time.perf_counter() - t0
     say()
-
     h = store.health()
-    stages = [Stage("catalogue built", h.items, h.limit, h.headroom_codes, h.false_hit_now, unknown.queries,
-                    unknown.queries_hit, unknown.low, unknown.high, unknown.predicted_rate, h.status)]
+    sc.stages.append(Stage("catalogue built", h.items, h.limit, h.headroom_codes, h.false_hit_now, unknown.queries,
+                           unknown.queries_hit, unknown.low, unknown.high, unknown.predicted_rate, h.status))
 
-    # -- 4. label near-duplicates in the upload batch ----------------------------------------
-    t0 = time.perf_counter()
+
+def _recall_kind(sc, kind, kept, dust, rows) -> Recall:
+    """Query one kind of rescan, print it beside the model, return the figures."""
+    say, store, p, q_count = sc.say, sc.store, sc.plan, sc.q_count
+    queries = Codes.from_indices(rows, BITS)
+    tq = time.perf_counter()
+    hits = store.query_many(queries)
+    ms = 1e3 * (time.perf_counter() - tq) / q_count
+    found = _found(hits, sc.sources)
+    sample_size = min(p.sample_size, WEIGHT)
+    predicted = float(model.recall(WEIGHT, sample_size, p.threshold, p.detectors, noise=(WEIGHT - kept) / WEIGHT))
+    per_code = float(model.false_hit_per_code(BITS, WEIGHT, sample_size, p.threshold, p.detectors, kept + dust))
+    expected = q_count * (len(store) - 1) * per_code
+    r = Recall(kind, kept, dust, q_count, int(found.sum()), predicted, int(hits.counts.sum() - found.sum()),
+               expected, ms)
+    low, high = model.clopper_pearson(r.recalled, r.queries)
+    what = f"{kept} of {WEIGHT} features kept" + (f", {dust} dust features added" if dust else ", nothing added")
+    say(f"   {kind}: {what}")
+    say(f"     recall      {r.recall:.5f} measured ({r.recalled:,} of {r.queries:,}; 95% CI "
+        f"{low:.5f}-{high:.5f}); model {predicted:.5f}")
+    say(f"     false hits  {r.false_hits:,} measured in {r.queries:,} queries; model {expected:.2f} expected "
+        f"({_poisson_range(expected)})")
+    say(f"     latency     {ms:.3f} ms per query (query_many, batches of {q_count:,})")
+    return r
+
+
+def _upload_batch(sc):
+    """The upload queue: new scans with planted re-uploads of each other and of catalogued bolts, shuffled."""
+    size, rng, catalogue = sc.size, sc.rng, sc.catalogue
     n_new = max(500, size // 8)
     n_again = max(20, size // 100)
     fresh, in_batch_src, changed = planted_duplicates(n_new, BITS, WEIGHT, fraction=0.1, max_changed=MAX_CHANGED,
-                                                      seed=code_seed(4))
+                                                      seed=sc.code_seed(4))
     again_of = np.sort(rng.choice(size, size=n_again, replace=False)).astype(np.int64)
     again = Codes.from_indices(
-        _near_copies(_rows(catalogue[again_of]), rng.integers(0, MAX_CHANGED + 1, size=n_again), BITS, rng), BITS)
+        near_copies(_rows(catalogue[again_of]), rng.integers(0, MAX_CHANGED + 1, size=n_again), BITS, rng), BITS)
     uploads = Codes.concat([fresh, again])
     total = len(uploads)
     batch_src = np.concatenate([in_batch_src, np.full(n_again, -1, dtype=np.int64)])
@@ -478,6 +502,13 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     uploads, batch_src, changed, catalogue_src = uploads[order], batch_src[order], changed[order], catalogue_src[order]
     batch_src[batch_src >= 0] = where[batch_src[batch_src >= 0]]
     planted = batch_src >= 0
+    return uploads, total, batch_src, changed, catalogue_src, planted, n_again
+
+
+def _phase_uploads(sc) -> None:
+    say, store = sc.say, sc.store
+    uploads, total, batch_src, changed, catalogue_src, planted, n_again = _upload_batch(sc)
+    progress = sc.progress
     say(f"4. Catch re-uploads: the scanners' upload queue holds {total:,} scans; the demo planted")
     say(f"   {int(planted.sum()):,} re-uploads of scans in the same queue and {n_again:,} of catalogued bolts, each")
     say(f"   differing from its first upload in 0 to {MAX_CHANGED} of its {WEIGHT} features "
@@ -485,7 +516,7 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     bar = TqdmProgress(delay=0.0, file=sys.stderr) if progress else False
     try:
         labels, summary = label_near_duplicates(uploads, min_overlap=MIN_OVERLAP, mode="components", recall=NEAR_DUPLICATE_RECALL,
-                                 seed=code_seed(5), progress=bar, return_summary=True)
+                                 seed=sc.code_seed(5), progress=bar, return_summary=True)
     finally:
         if bar:
             bar.close()
@@ -523,11 +554,14 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
         f"{planted_catalogue:,};")
     say(f"     in-queue re-uploads the labelling had missed {in_queue:,}; matches not planted {unplanted_catalogue:,}; "
         f"{int(is_new.sum()):,} new bolts added")
-    seconds["near-duplicates"] = time.perf_counter() - t0
+    sc.uploads, sc.planted_in_batch, sc.found_in_batch = total, int(planted.sum()), found_in_batch
+    sc.unplanted_merges, sc.planted_catalogue = unplanted_merges, planted_catalogue
+    sc.found_catalogue, sc.unplanted_catalogue = found_catalogue, unplanted_catalogue
     say()
 
-    # -- 5. health as the store fills ----------------------------------------
-    t0 = time.perf_counter()
+
+def _phase_fill(sc) -> None:
+    say, store, stages, curve = sc.say, sc.store, sc.stages, sc.curve
     h = store.health()
     limit = h.limit
     final = int(math.floor(FILL_TO * limit)) + 1
@@ -543,7 +577,7 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
     def stage(label):
         hh = store.health()
-        pr = store.measure_false_hits(_measure_size(store, STAGE_QUERIES), seed=code_seed(6) + len(stages))
+        pr = store.measure_false_hits(_measure_size(store, STAGE_QUERIES), seed=sc.code_seed(6) + len(stages))
         stages.append(Stage(label, hh.items, hh.limit, hh.headroom_codes, hh.false_hit_now, pr.queries,
                             pr.queries_hit, pr.low, pr.high, pr.predicted_rate, hh.status))
         curve.append((hh.items, hh.false_hit_now, hh.headroom_codes))
@@ -551,7 +585,7 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
 
     row(stages[0])
     stage("uploads added")
-    gen = np.random.default_rng(streams[7])
+    gen = np.random.default_rng(sc.streams[7])
     step = max(1_000, int(limit / 100))
     for mark in (0.9, 1.0, FILL_TO):
         target = min(final, int(math.floor(mark * limit)) + (1 if mark >= 1.0 else 0))
@@ -559,7 +593,7 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
             continue
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always", SaturationWarning)
-            with _bar(progress, target - len(store), "adding bolts") as bar:
+            with _bar(sc.progress, target - len(store), "adding bolts") as bar:
                 while len(store) < target:
                     n = min(step, target - len(store))
                     store.add(Codes.random(n, BITS, WEIGHT, seed=int(gen.integers(2**63))))
@@ -576,12 +610,13 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     for line in str(final_health).splitlines():
         say(textwrap.fill(line, width=100, initial_indent="     ", subsequent_indent="       ",
                           break_on_hyphens=False))
-    seconds["health"] = time.perf_counter() - t0
+    sc.final_health = final_health
     say()
 
-    # -- 6. save and serve memory-mapped ------------------------------------
-    t0 = time.perf_counter()
-    store_path = os.path.join(folder, STORE_FILE)
+
+def _phase_save(sc) -> None:
+    say, store, first_queries, q_count = sc.say, sc.store, sc.first_queries, sc.q_count
+    store_path = os.path.join(sc.folder, STORE_FILE)
     ts = time.perf_counter()
     store.save(store_path)
     t_save = time.perf_counter() - ts
@@ -602,14 +637,16 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     say(f"   Store.load(mmap=True) checked and opened it in {t_open:.2f} s (read-only: {served.read_only}); "
         f"{q_count:,} rescans in {t_query:.2f} s")
     say(f"   answers identical to the in-memory store: {'yes' if same else 'NO'}")
-    seconds["save"] = time.perf_counter() - t0
+    sc.store_path = store_path
     say()
 
-    # -- 7. plot ------------------------------------------------------------
+
+def _phase_plot(sc, plot) -> None:
+    say = sc.say
     plot_path = None
     if plot:
         try:
-            plot_path = _plot(os.path.join(folder, PLOT_FILE), store, final_health, stages, curve)
+            plot_path = _plot(os.path.join(sc.folder, PLOT_FILE), sc.store, sc.final_health, sc.stages, sc.curve)
         except ImportError:
             say("7. No plot: matplotlib is not installed (pip install 'sparseindex[plot]')")
         else:
@@ -617,18 +654,23 @@ def run(size=DEFAULT_SIZE, *, seed=1, out=None, progress=None, stream=None, plot
     else:
         say("7. No plot (not asked for)")
     say()
-    seconds["total"] = time.perf_counter() - t_start
+    sc.plot_path = plot_path
+
+
+def _conclude(sc) -> DemoResult:
+    say, seconds = sc.say, sc.seconds
+    seconds["total"] = time.perf_counter() - sc.t_start
     say(f"Done in {seconds['total']:.1f} s wall time")
     say("  (" + ", ".join(f"{k} {v:.1f} s" for k, v in seconds.items() if k != "total") + ").")
     say("A hit is probabilistic evidence, not proof of identity: with codes that stand for people, do not")
     say("let a hit alone decide access, money or identity; check the stored code and the exact overlap")
     say("against your own rules.")
     return DemoResult(
-        size=size, seed=seed, plan=p, recall=tuple(recalls), unknown=unknown, uploads=total,
-        planted_in_batch=int(planted.sum()), found_in_batch=found_in_batch, unplanted_merges=unplanted_merges,
-        planted_catalogue=planted_catalogue, found_catalogue=found_catalogue,
-        unplanted_catalogue=unplanted_catalogue, transitions=tuple(transitions), stages=tuple(stages),
-        store_path=store_path, plot_path=plot_path, seconds=dict(seconds),
+        size=sc.size, seed=sc.seed, plan=sc.plan, recall=tuple(sc.recalls), unknown=sc.unknown, uploads=sc.uploads,
+        planted_in_batch=sc.planted_in_batch, found_in_batch=sc.found_in_batch, unplanted_merges=sc.unplanted_merges,
+        planted_catalogue=sc.planted_catalogue, found_catalogue=sc.found_catalogue,
+        unplanted_catalogue=sc.unplanted_catalogue, transitions=tuple(sc.transitions), stages=tuple(sc.stages),
+        store_path=sc.store_path, plot_path=sc.plot_path, seconds=dict(seconds),
     )
 
 

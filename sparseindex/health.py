@@ -46,7 +46,8 @@ import warnings
 
 import numpy as np
 
-from . import model
+from . import model, validation
+from .codes import Codes
 from .errors import SaturationWarning
 
 __all__ = ["Health", "FalseHitMeasurement", "StoreStats", "HealthMemo", "Watch", "STATUSES", "compute",
@@ -486,11 +487,9 @@ def classify(items, limit, warn_fraction) -> str:
 
 
 def check_measurement(queries, source) -> None:
-    """``ValueError`` for a measurement request that cannot run, before any work."""
-    if isinstance(queries, bool) or not isinstance(queries, (int, np.integer)) or queries < 1:
-        raise ValueError(f"measure_false_hits: queries={queries!r} must be a positive integer")
-    if source not in ("uniform", "usage"):
-        raise ValueError(f"measure_false_hits: source={source!r} must be 'uniform' or 'usage'")
+    """``TypeError`` / ``ValueError`` for a measurement request that cannot run, before any work."""
+    validation.integer("queries", queries, minimum=1, what="measure_false_hits")
+    validation.choice("source", source, ("uniform", "usage"), what="measure_false_hits")
 
 
 def measure_false_hits(report: Health, usage: np.ndarray, count_hits, queries=10_000, *, source="uniform",
@@ -510,11 +509,8 @@ def measure_false_hits(report: Health, usage: np.ndarray, count_hits, queries=10
     >>> r.queries, r.source, store.health().queries_total
     (300, 'uniform', 0)
     """
-    from .codes import Codes
-
     check_measurement(queries, source)
-    if seed is None:
-        seed = int(np.random.SeedSequence().generate_state(1)[0])
+    seed = validation.seed("seed", seed, what="measure_false_hits")
     started = time.perf_counter()
     q, items = report.query_weight, report.items
     if q is None or items == 0:

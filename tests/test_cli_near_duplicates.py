@@ -165,7 +165,7 @@ def test_bad_input_exits_2_with_one_line_naming_the_fault(name, extra, message, 
 @pytest.mark.parametrize("extra,message", [
     (["--min-overlap", "0"], "min_overlap=0 must be >= 1"),
     (["--min-overlap", "999"], "min_overlap=999 exceeds bits=300"),
-    (["--min-overlap", "5", "--recall", "2"], "recall=2.0 must be in (0, 1]"),
+    (["--min-overlap", "5", "--recall", "2"], "recall=2.0 must be a number in (0, 1]"),
     (["--min-overlap", "5", "--out", "labels.txt"], "--out labels.txt: the labels file must end in .npy"),
     (["--min-overlap", "5", "--out", "/no/such/folder/labels.npy"], "folder /no/such/folder does not exist"),
 ])

@@ -127,20 +127,6 @@ def test_share_targets_plan_the_same_configuration():
         assert (1 - fh) ** (2_000_000 / cap) == pytest.approx(1 - 1e-9, rel=1e-15)
 
 
-def test_greedy_rule_matches_store_find_or_add():
-    # reference: Store.find_or_add on one store; _greedy is fed the same stored and in-batch matches
-    rng = np.random.default_rng(4)
-    base = Codes.random(300, BITS, WEIGHT, seed=5)
-    ref = Store(BITS, seed=9, **PARAMS)
-    ref.add(base)
-    batch = planted(rng, base, 80)
-    stored = ref.find_matches(batch, min_overlap=9)
-    ids, new = cl._greedy(stored, cl._batch_matches(batch, 9), ref.next_id)
-    want_ids, want_new = ref.find_or_add(batch, min_overlap=9)
-    assert np.array_equal(ids, want_ids) and np.array_equal(new, want_new)
-    assert new.any() and (~new).any()
-
-
 # -- on the cluster -------------------------------------------------------------
 
 

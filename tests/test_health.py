@@ -107,7 +107,7 @@ def test_usage_counts_follow_adds_removes_compaction_and_loads(tmp_path):
     live = store.ids()
     reference = np.asarray(store.get(live).to_scipy().sum(axis=0)).ravel()  # scipy.sparse column sums
     h = store.health()
-    assert np.array_equal(store._usage, reference)
+    assert np.array_equal(store._counts.usage, reference)
     assert h.unused_bits == int((reference == 0).sum())
     assert h.effective_bits == pytest.approx(reference.sum() ** 2 / (reference.astype(float) ** 2).sum())
     assert h.hottest_bit_load_ratio == pytest.approx(reference.max() / reference.mean())
@@ -117,9 +117,9 @@ def test_usage_counts_follow_adds_removes_compaction_and_loads(tmp_path):
     store._check(deep=True)
     store.save(tmp_path / "s")
     loaded = Store.load(tmp_path / "s", mmap=True)
-    assert loaded._usage is None  # counted lazily, not at load
+    assert loaded._counts.usage is None  # counted lazily, not at load
     hl = loaded.health()
-    assert np.array_equal(loaded._usage, reference) and hl.effective_bits == h.effective_bits
+    assert np.array_equal(loaded._counts.usage, reference) and hl.effective_bits == h.effective_bits
 
 
 def test_openmetrics_parsed_by_an_independent_parser():

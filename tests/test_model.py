@@ -414,8 +414,6 @@ def test_mixture_lies_between_one_detector_and_union_bound():
     (lambda: detector_false_hit(2048, 20, 5, -1), r"query_weight=-1 must be >= 0"),
     (lambda: detector_false_hit(2048, 2.5, 1, 40), r"sample_size=2.5 must be an integer"),
     (lambda: detector_false_hit(2048, float("nan"), 1, 40), r"sample_size=nan must be an integer"),
-    (lambda: detector_false_hit(2048, True, 1, 40), r"sample_size=True must be an integer"),
-    (lambda: detector_false_hit(2048, "20", 1, 40), r"sample_size='20' must be an integer"),
     (lambda: false_hit_per_code(100, 200, 10, 5), r"weight=200 must be <= bits=100"),
     (lambda: false_hit_per_code(100, 0, 10, 5), r"weight=0 must be >= 1"),
     (lambda: false_hit_per_code(100, 20, 30, 5), r"sample_size=30 must be <= weight=20"),
@@ -435,6 +433,15 @@ def test_mixture_lies_between_one_detector_and_union_bound():
 ])
 def test_bad_input_raises_value_error_quoting_the_value(call, message):
     with pytest.raises(ValueError, match=message):
+        call()
+
+
+@pytest.mark.parametrize("call, message", [
+    (lambda: detector_false_hit(2048, True, 1, 40), r"sample_size=True must be an integer"),
+    (lambda: detector_false_hit(2048, "20", 1, 40), r"sample_size='20' must be an integer"),
+])
+def test_a_wrong_type_raises_type_error_quoting_the_value(call, message):
+    with pytest.raises(TypeError, match=message):
         call()
 
 

@@ -455,7 +455,7 @@ BAD = [
     (lambda: detector_fire_probability(P8, [0, 1], 0, 2), r"threshold=0 must be >= 1"),
     (lambda: detector_fire_probability(P8, [0, 1], 1, 9), r"query_weight=9 is impossible"),
     (lambda: detector_fire_probability(P8, [0, 1], 1, -2), r"query_weight=-2 must be >= 0"),
-    (lambda: detector_fire_probability(P8, [0, 1], 1, 2.5), r"query_weight=2\.5 must be an integer"),
+    (lambda: detector_fire_probability(P8, [0, 1], 1, 2.5), r"query_weight=2\.5 must be a whole number"),
     (lambda: detector_fire_probability([1, 1, 1, 0.5], [0], 1, 2), r"query_weight=2 is impossible: 3 bits"),
     (lambda: usage_bernoulli([1, -2, 3], 1), r"frequencies\[1\]=-2\.0 must be finite"),
     (lambda: usage_bernoulli([0, 0, 0], 1), r"all zero"),

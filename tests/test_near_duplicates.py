@@ -320,15 +320,18 @@ def test_progress_bars_go_to_stderr(capsys):
     (dict(min_overlap=65), ValueError, r"min_overlap=65 exceeds bits=64"),
     (dict(min_overlap=3, mode="all"), ValueError, r"mode='all' must be one of 'first', 'components'"),
     (dict(min_overlap=3, method="fast"), ValueError, r"method='fast' must be one of"),
-    (dict(min_overlap=3, recall=0.0), ValueError, r"recall=0.0 must be in \(0, 1\]"),
-    (dict(min_overlap=3, recall=1.5), ValueError, r"recall=1.5 must be in \(0, 1\]"),
-    (dict(min_overlap=3, recall=float("nan")), ValueError, r"recall=nan must be a number"),
-    (dict(min_overlap=3, bands=(0, 3)), ValueError, r"bands=\(0, 3\): bands=0 must be a positive integer"),
-    (dict(min_overlap=3, bands="ab"), ValueError, r"bands='ab': bands='a' must be a positive integer"),
-    (dict(min_overlap=3, bands=5), ValueError, r"bands=5 must be a pair"),
+    (dict(min_overlap=3, recall=0.0), ValueError, r"recall=0.0 must be a number in \(0, 1\]"),
+    (dict(min_overlap=3, recall=1.5), ValueError, r"recall=1.5 must be a number in \(0, 1\]"),
+    (dict(min_overlap=3, recall=float("nan")), ValueError, r"recall=nan must be finite"),
+    (dict(min_overlap=3, recall="high"), TypeError, r"recall='high' must be a number"),
+    (dict(min_overlap=3, bands=(0, 3)), ValueError, r"bands=\(0, 3\): bands=0 must be >= 1"),
+    (dict(min_overlap=3, bands="ab"), TypeError, r"bands='ab' must be a pair"),
+    (dict(min_overlap=3, bands=(1, 2, 3)), ValueError, r"bands=\(1, 2, 3\) must be a pair"),
+    (dict(min_overlap=3, bands=5), TypeError, r"bands=5 must be a pair"),
     (dict(min_overlap=3, bands=(2, 2), method="index"), ValueError, r"goes with method='banding'"),
-    (dict(min_overlap=3, seed=-1), ValueError, r"seed=-1 must be in 0..2\*\*64-1"),
-    (dict(min_overlap=3, seed="x"), TypeError, r"seed='x' must be an integer or None"),
+    (dict(min_overlap=3, seed=-1), ValueError, r"seed=-1 must be >= 0"),
+    (dict(min_overlap=3, seed=2**64), ValueError, r"seed=18446744073709551616 must be <= 18446744073709551615"),
+    (dict(min_overlap=3, seed="x"), TypeError, r"seed='x' must be an integer"),
     (dict(min_overlap=3, progress="yes"), TypeError, r"progress='yes' must be True, False or a callable"),
     (dict(min_overlap=3, return_summary="yes"), TypeError, r"return_summary='yes' must be True or False"),
     (dict(min_overlap=3, method="banding", recall=1.0), ValueError, r"recall=1 cannot be promised by banding"),
@@ -356,7 +359,7 @@ def test_bad_inputs_name_the_row_or_the_form():
         label_near_duplicates(np.array([[1, 2]]), min_overlap=1, bits=8)
     with pytest.raises(ValueError, match=r"row 1: bit index 9 is out of range for bits=8"):
         label_near_duplicates([[1, 2], [3, 9]], min_overlap=1, bits=8)
-    with pytest.raises(ValueError, match=r"bits=0 must be a positive integer"):
+    with pytest.raises(ValueError, match=r"bits=0 must be >= 1"):
         label_near_duplicates([[1]], min_overlap=1, bits=0)
 
 

@@ -241,30 +241,30 @@ def test_plan_error_is_value_error():
         plan(2048, 40, false_hit=1e-30, capacity=10**12, noise=0.9)
 
 
-@pytest.mark.parametrize("kwargs,message", [
-    (dict(bits=0), r"bits=0 must be >= 1"),
-    (dict(weight=0), r"weight=0 must be >= 1"),
-    (dict(weight=5000), r"weight=5000 must be <= bits=2048"),
-    (dict(false_hit=0.0), r"false_hit=0.0 must be > 0 and < 1"),
-    (dict(false_hit=1.0), r"false_hit=1.0 must be > 0 and < 1"),
-    (dict(capacity=0), r"capacity=0 must be >= 1"),
-    (dict(capacity=2.5), r"capacity=2.5 must be an integer"),
-    (dict(noise=1.0), r"noise=1.0 must be >= 0 and < 1"),
-    (dict(noise=-0.1), r"noise=-0.1 must be >= 0 and < 1"),
-    (dict(noise=float("nan")), r"noise=nan must be a number"),
-    (dict(recall=1.0), r"recall=1.0 must be > 0 and < 1"),
-    (dict(recall=0.0), r"recall=0.0 must be > 0 and < 1"),
-    (dict(max_detectors=0), r"max_detectors=0 must be >= 1"),
-    (dict(bits=True), r"bits=True must be a single integer"),
-    (dict(bits=[2048]), r"bits=\[2048\] must be a single integer"),
-    (dict(recall="high"), r"recall='high' must be a number"),
+@pytest.mark.parametrize("kwargs, error, message", [
+    (dict(bits=0), ValueError, r"bits=0 must be >= 1"),
+    (dict(weight=0), ValueError, r"weight=0 must be >= 1"),
+    (dict(weight=5000), ValueError, r"weight=5000 must be <= bits=2048"),
+    (dict(false_hit=0.0), ValueError, r"false_hit=0.0 must be > 0 and < 1"),
+    (dict(false_hit=1.0), ValueError, r"false_hit=1.0 must be > 0 and < 1"),
+    (dict(capacity=0), ValueError, r"capacity=0 must be >= 1"),
+    (dict(capacity=2.5), ValueError, r"capacity=2.5 must be an integer"),
+    (dict(noise=1.0), ValueError, r"noise=1.0 must be >= 0 and < 1"),
+    (dict(noise=-0.1), ValueError, r"noise=-0.1 must be >= 0 and < 1"),
+    (dict(noise=float("nan")), ValueError, r"noise=nan must be a number"),
+    (dict(recall=1.0), ValueError, r"recall=1.0 must be > 0 and < 1"),
+    (dict(recall=0.0), ValueError, r"recall=0.0 must be > 0 and < 1"),
+    (dict(max_detectors=0), ValueError, r"max_detectors=0 must be >= 1"),
+    (dict(bits=True), TypeError, r"bits=True must be a single integer"),
+    (dict(bits=[2048]), TypeError, r"bits=\[2048\] must be a single integer"),
+    (dict(recall="high"), TypeError, r"recall='high' must be a number"),
 ])
-def test_bad_input_raises_value_error_quoting_the_value(kwargs, message):
+def test_bad_input_raises_value_error_quoting_the_value(kwargs, error, message):
     args = dict(bits=2048, weight=40, false_hit=1e-9, capacity=10**6, noise=0.25,
                 recall=0.999, max_detectors=8)
     args.update(kwargs)
     bits, weight = args.pop("bits"), args.pop("weight")
-    with pytest.raises(ValueError, match=message) as info:
+    with pytest.raises(error, match=message) as info:
         plan(bits, weight, **args)
     assert not isinstance(info.value, PlanError)
 

@@ -132,7 +132,7 @@ def test_expected_candidates_match_a_count_on_random_codes():
     store.add(codes)
     bank = store._bank
     queries = Codes.random(30, bits, weight, seed=9)
-    indptr, q_all = queries._csr()
+    indptr, q_all = queries.to_csr()
     predicted = observed = 0.0
     for i in range(30):
         q_bits = q_all[indptr[i] : indptr[i + 1]]

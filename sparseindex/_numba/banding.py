@@ -114,21 +114,3 @@ def gather_matches(order, positions, offsets, counts, overlaps, min_overlap):
     return lo, hi, ov
 
 
-@kernel
-def bit_usage(words, bits):
-    """How many rows set each bit. O(set bits).
-
-    Examples
-    --------
-    >>> bit_usage(np.array([[0b0111], [0b1110]], dtype=np.uint64), 4).tolist()
-    [1, 2, 2, 1]
-    """
-    counts = np.zeros(bits, dtype=np.int64)
-    for r in range(words.shape[0]):
-        for w in range(words.shape[1]):
-            x = words[r, w]
-            while x != np.uint64(0):
-                low = x & (~x + np.uint64(1))
-                counts[w * 64 + np.int64(popcount64(low - np.uint64(1)))] += 1
-                x = x ^ low
-    return counts

@@ -77,8 +77,8 @@ else:
             hint never faults, even for an address past the array. Locality 2
             (the second-level cache, not the first): a block's worth of
             prefetched runs is larger than the first-level cache and would
-            evict the counters and each other there (about 0.9x the query
-            time of locality 3 at 10^6 codes).
+            evict the counters and each other there (DEVELOPERS.md, "Measured
+            choices").
             """
             sig = types.void(array, index)
 
@@ -107,6 +107,7 @@ else:
 
         globals().update(prefetch=prefetch, _ctpop_u64=_ctpop_u64)
 
+    _ctpop_u64 = prefetch = None  # the intrinsics, put in place by _define_intrinsics before any compile
     on_first_use(_define_intrinsics)
 
     @inline_kernel
@@ -706,9 +707,7 @@ def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, 
 
     ``chunk_counters`` holds one zeroed counter row (at least one block span
     long) per chunk, and is zero again on exit: kept by the caller, so that
-    a query does not pay for fresh memory (with a new row per chunk and
-    call, one chunk ran 11% slower than :func:`query_one`; with kept rows,
-    level with it). Each chunk has room for its fired detectors; a chunk
+    a query does not pay for first-touch of fresh memory on every call. Each chunk has room for its fired detectors; a chunk
     that runs out of room is rescanned with room for all. One call does the
     plan, the scans and the exact check, so a query pays one dispatch.
     """

@@ -11,7 +11,7 @@ import argparse
 import importlib
 import sys
 
-from .. import __version__
+from ..version import __version__
 
 #: Subcommand name -> module (inside this package) with ``add_parser`` and ``run``.
 COMMANDS = {

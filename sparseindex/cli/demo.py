@@ -15,7 +15,7 @@ import argparse
 import os
 import sys
 
-from .plan import _count
+from .arguments import count
 
 __all__ = ["add_parser", "run"]
 
@@ -48,9 +48,9 @@ def add_parser(subparsers):
             "15 s after. A hit is probabilistic evidence, not proof of identity: do not let a hit alone decide "
             "access, money or identity."),
     )
-    p.add_argument("--size", type=_count, default=DEFAULT_SIZE,
+    p.add_argument("--size", type=count, default=DEFAULT_SIZE,
                    help=f"bolts in the planned catalogue (default {DEFAULT_SIZE:,}, at least {MIN_SIZE:,})")
-    p.add_argument("--seed", type=_count, default=1, help="seed of all generated data (default 1)")
+    p.add_argument("--seed", type=count, default=1, help="seed of all generated data (default 1)")
     p.add_argument("--out", metavar="DIR", default=None,
                    help="folder for the saved store and the plot (default: a new temporary folder)")
     p.add_argument("--no-plot", dest="plot", action="store_false", help="do not draw the headroom plot")
@@ -79,8 +79,8 @@ def run(args) -> int:
         return _fail(f"--size {args.size:,} must be at least {MIN_SIZE:,}")
     if args.size > 10**8:
         return _fail(f"--size {args.size:,} is more than this demo is made for (at most 100,000,000)")
-    if args.seed < 0 or args.seed >= 2**63:
-        return _fail(f"--seed {args.seed} must be in 0..2**63-1")
+    if args.seed < 0 or args.seed >= 2**64:
+        return _fail(f"--seed {args.seed} must be in 0..2**64-1")
     if args.out is not None:
         if os.path.exists(args.out) and not os.path.isdir(args.out):
             return _fail(f"--out {args.out}: exists and is not a folder")

@@ -13,7 +13,7 @@ from __future__ import annotations
 import math
 import sys
 
-from .plan import _count, _number
+from .arguments import count, number
 from ..errors import StoreFormatError
 
 __all__ = ["add_parser", "run", "plot_headroom"]
@@ -45,13 +45,13 @@ def add_parser(subparsers):
     fmt = p.add_mutually_exclusive_group()
     fmt.add_argument("--json", action="store_true", help="print the report as JSON")
     fmt.add_argument("--openmetrics", action="store_true", help="print the report in the OpenMetrics text format")
-    p.add_argument("--measure", type=_count, default=0, metavar="N", help="run N random unrelated queries first")
+    p.add_argument("--measure", type=count, default=0, metavar="N", help="run N random unrelated queries first")
     p.add_argument("--source", choices=("uniform", "usage"), default="uniform",
                    help="measurement queries: uniform random bits, or drawn from the store's bit usage")
-    p.add_argument("--seed", type=_count, default=None, help="seed of the measurement queries")
-    p.add_argument("--false-hit", type=_number, default=None, metavar="F",
+    p.add_argument("--seed", type=count, default=None, help="seed of the measurement queries")
+    p.add_argument("--false-hit", type=number, default=None, metavar="F",
                    help="false-hit target per query (default: the store's plan)")
-    p.add_argument("--warn-fraction", type=_number, default=None, metavar="W",
+    p.add_argument("--warn-fraction", type=number, default=None, metavar="W",
                    help="fill fraction where the status turns from healthy to filling (default 0.8)")
     p.add_argument("--plot", metavar="FILE.png", default=None,
                    help="draw false-hit chance against stored codes (needs matplotlib)")

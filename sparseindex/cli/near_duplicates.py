@@ -27,7 +27,7 @@ import tempfile
 
 import numpy as np
 
-from .plan import _count, _number
+from .arguments import count, number
 from ..codes import Codes
 from ..near_duplicates.labelling import TqdmProgress, label_near_duplicates
 
@@ -70,17 +70,17 @@ def add_parser(subparsers):
             ".npz file. Every reported match is verified exactly."),
     )
     p.add_argument("input", metavar="INPUT", help="codes: .npy (bool rows or index matrix) or .npz (scipy.sparse)")
-    p.add_argument("--min-overlap", type=_count, required=True, dest="min_overlap",
+    p.add_argument("--min-overlap", type=count, required=True, dest="min_overlap",
                    help="shared set bits that make two codes duplicates")
     p.add_argument("--mode", choices=("first", "components"), default="first",
                    help="first: join the earlier representative of greatest overlap (default); "
                         "components: connected components of the match relation")
     p.add_argument("--method", choices=("auto", "banding", "index"), default="auto",
                    help="auto (default): exact index when cheap, else banded min-wise hashing")
-    p.add_argument("--recall", type=_number, default=0.99,
+    p.add_argument("--recall", type=number, default=0.99,
                    help="banding: least chance of finding the hardest matching pair (default 0.99)")
-    p.add_argument("--seed", type=_count, default=None, help="seed of the min-hash functions (default: fresh)")
-    p.add_argument("--bits", type=_count, default=None,
+    p.add_argument("--seed", type=count, default=None, help="seed of the min-hash functions (default: fresh)")
+    p.add_argument("--bits", type=count, default=None,
                    help="code width for an index matrix (default: largest index + 1)")
     p.add_argument("--out", default=None, help="write the labels (int64) to this .npy file")
     p.add_argument("--json", action="store_true", help="print the summary as JSON")

@@ -8,11 +8,11 @@ malformed or cannot be met).
 
 from __future__ import annotations
 
-import argparse
 import json
 import math
 import sys
 
+from .arguments import count, number
 from ..model import PlanError
 from ..model.planner import plan
 
@@ -21,37 +21,12 @@ __all__ = ["add_parser", "run"]
 _POSTING_BYTES = 2  # postings are uint16 offsets within a block of detectors (store/bank.py)
 
 
-def _count(text):
-    """A count such as 1000000, 1e6, 1_000_000 or 1,000,000."""
-    cleaned = text.replace(",", "").replace("_", "").strip()
-    try:
-        value = int(cleaned)
-    except ValueError:
-        try:
-            number = float(cleaned)
-        except ValueError:
-            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number")
-        if not math.isfinite(number) or not number.is_integer():
-            raise argparse.ArgumentTypeError(f"{text!r} is not a whole number")
-        value = int(number)
-    return value
-
-
-def _number(text):
-    try:
-        value = float(text)
-    except ValueError:
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number")
-    if math.isnan(value):
-        raise argparse.ArgumentTypeError(f"{text!r} is not a number")
-    return value
-
-
 def add_parser(subparsers):
     """Register ``plan`` on an argparse sub-parser collection; return it.
 
     Examples
     --------
+    >>> import argparse
     >>> sub = argparse.ArgumentParser(prog="sparseindex").add_subparsers()
     >>> args = add_parser(sub).parse_args(["--bits", "1536", "--weight", "30", "--false-hit", "1e-9",
     ...                                    "--capacity", "1,000,000"])
@@ -68,19 +43,19 @@ def add_parser(subparsers):
             "a query that lacks a NOISE fraction of a stored code's set bits "
             "still recalls it with chance RECALL."),
     )
-    p.add_argument("--bits", type=_count, required=True,
+    p.add_argument("--bits", type=count, required=True,
                    help="code width in bits")
-    p.add_argument("--weight", type=_count, required=True,
+    p.add_argument("--weight", type=count, required=True,
                    help="set bits per code")
-    p.add_argument("--false-hit", type=_number, required=True, dest="false_hit",
+    p.add_argument("--false-hit", type=number, required=True, dest="false_hit",
                    help="largest chance of a false hit per query, e.g. 1e-9")
-    p.add_argument("--capacity", type=_count, required=True,
+    p.add_argument("--capacity", type=count, required=True,
                    help="stored codes the target must hold for, e.g. 1e6")
-    p.add_argument("--noise", type=_number, default=0.0,
+    p.add_argument("--noise", type=number, default=0.0,
                    help="fraction of set bits a query may lack (default 0)")
-    p.add_argument("--recall", type=_number, default=0.999,
+    p.add_argument("--recall", type=number, default=0.999,
                    help="smallest recall of such a query (default 0.999)")
-    p.add_argument("--max-detectors", type=_count, default=8, dest="max_detectors",
+    p.add_argument("--max-detectors", type=count, default=8, dest="max_detectors",
                    help="most detectors per stored code (default 8)")
     p.add_argument("--json", action="store_true",
                    help="print the plan as JSON instead of a table")
@@ -172,6 +147,7 @@ def run(args):
 
     Examples
     --------
+    >>> import argparse
     >>> args = argparse.Namespace(bits=1536, weight=30, false_hit=1e-9, capacity=10**6, noise=0.25,
     ...                           recall=0.999, max_detectors=8, json=False)
     >>> import contextlib, io

@@ -25,7 +25,7 @@ def int_param(name, value, exact=True):
     a float64 array returned.
     """
     if isinstance(value, (bool, np.bool_)):
-        raise ValueError(f"{name}={value!r} must be an integer, not a bool")
+        raise TypeError(f"{name}={value!r} must be an integer, not a bool")
     if isinstance(value, numbers.Integral):
         if not exact:
             return np.asarray(float(value))
@@ -34,7 +34,7 @@ def int_param(name, value, exact=True):
         return np.asarray(int(value), dtype=np.int64)
     arr = np.asarray(value)
     if arr.dtype == np.bool_ or arr.dtype.kind not in "iuf":
-        raise ValueError(f"{name}={value!r} must be an integer")
+        raise TypeError(f"{name}={short(value)} must be an integer")
     arr = arr.astype(np.float64)
     bad = ~np.isfinite(arr) | (arr != np.floor(arr))
     if np.any(bad):
@@ -50,10 +50,10 @@ def int_param(name, value, exact=True):
 def real_param(name, value):
     """Return ``value`` as a float64 array of finite numbers, or raise."""
     if isinstance(value, (bool, np.bool_)):
-        raise ValueError(f"{name}={value!r} must be a number, not a bool")
+        raise TypeError(f"{name}={value!r} must be a number, not a bool")
     arr = np.asarray(value)
     if arr.dtype == np.bool_ or arr.dtype.kind not in "iuf":
-        raise ValueError(f"{name}={value!r} must be a number")
+        raise TypeError(f"{name}={short(value)} must be a number")
     arr = arr.astype(np.float64)
     if np.any(np.isnan(arr)):
         raise ValueError(f"{name}=nan must be a number")
@@ -121,8 +121,10 @@ def check_count(name, value, minimum=0):
     if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Integral):
         if isinstance(value, (float, np.floating)) and float(value).is_integer():
             value = int(value)
+        elif isinstance(value, (float, np.floating)):
+            raise ValueError(f"{name}={short(value)} must be a whole number")
         else:
-            raise ValueError(f"{name}={short(value)} must be an integer")
+            raise TypeError(f"{name}={short(value)} must be an integer")
     value = int(value)
     if value < minimum:
         raise ValueError(f"{name}={value} must be >= {minimum}")

@@ -20,7 +20,7 @@ def _check_hits_trials(hits, trials, confidence):
         raise ValueError(f"hits={hits} must be <= trials={trials}")
     if isinstance(confidence, (bool, np.bool_)) or not isinstance(
             confidence, (numbers.Real, np.floating)):
-        raise ValueError(f"confidence={short(confidence)} must be a number")
+        raise TypeError(f"confidence={short(confidence)} must be a number")
     confidence = float(confidence)
     if not 0.0 < confidence < 1.0:
         raise ValueError(f"confidence={confidence!r} must be between 0 and 1 (exclusive)")

@@ -30,6 +30,7 @@ import numbers
 import numpy as np
 
 from ..errors import PlanError
+from ..validation import quoted
 from . import hypergeometric as _model
 
 __all__ = ["Plan", "PlanError", "plan"]
@@ -177,20 +178,19 @@ def _count_text(value):
 # ---------------------------------------------------------------------------
 
 def _scalar_int(name, value):
-    if isinstance(value, (bool, np.bool_)) or np.ndim(value) != 0:
-        raise ValueError(f"{name}={value!r} must be a single integer")
+    if isinstance(value, (bool, np.bool_)) or np.ndim(value) != 0 or not isinstance(value, numbers.Real):
+        raise TypeError(f"{name}={quoted(value)} must be a single integer")
     if isinstance(value, numbers.Integral):
         return int(value)
-    if isinstance(value, numbers.Real) and math.isfinite(value) \
-            and float(value).is_integer():
+    if math.isfinite(value) and float(value).is_integer():
         return int(value)
-    raise ValueError(f"{name}={value!r} must be an integer")
+    raise ValueError(f"{name}={quoted(value)} must be an integer")
 
 
 def _scalar_real(name, value):
     if isinstance(value, (bool, np.bool_)) or np.ndim(value) != 0 \
             or not isinstance(value, numbers.Real):
-        raise ValueError(f"{name}={value!r} must be a number")
+        raise TypeError(f"{name}={quoted(value)} must be a number")
     value = float(value)
     if math.isnan(value):
         raise ValueError(f"{name}=nan must be a number")
@@ -273,18 +273,11 @@ class _Search:
         return th
 
     # fast rows ---------------------------------------------------------
-    def block(self, s_lo, s_hi, cost_limit):
-        """Classify every (s, D) with s in [s_lo, s_hi] and cost <= limit.
-
-        Returns arrays (cost, s, D, theta, log_p1, status) over the pairs
-        whose recall target can be met, where theta is the largest threshold
-        meeting it and status is 1 (meets the false-hit target too), 0 (needs
-        the exact mixture) or -1 (fails it).
-        """
-        a, k, n, q = self.a, self.k, self.n, self.q
-        segs = np.arange(s_lo, s_hi + 1)
+    def _miss_columns(self, segs):
+        """log P[kept < theta] per sample size (rows) and threshold - 1 (columns), and the column count."""
+        a, k = self.a, self.k
         sf = segs.astype(np.float64)
-        full = s_hi + 1
+        full = int(segs[-1]) + 1
         # Columns needed: thresholds up to the recall quantile of the most
         # lenient detector count, plus a margin; checked below.
         mean = sf * (a - k) / a
@@ -293,16 +286,23 @@ class _Search:
         while True:
             keep = _rows_log_pmf(a, a - k, segs, width)
             with np.errstate(invalid="ignore"):
-                # log P[kept < theta] sits at column theta - 1
                 miss = np.logaddexp.accumulate(keep, axis=1)
             lenient = self.lrl / self.max_d
             # a row is complete if its thresholds end inside the columns
             ok = (width >= segs) | (miss[:, -1] > lenient)
             if np.all(ok) or width == full:
-                break
+                return miss, width
             width = full
-        # False-hit tails at columns up to `width`; terms further right are
-        # bounded by log-concavity, else take the whole row.
+
+    def _false_hit_tails(self, segs, width):
+        """log P[chance overlap >= theta] per sample size and threshold, and the column count.
+
+        Terms right of the columns are bounded by log-concavity, else the
+        whole row is taken.
+        """
+        n, q = self.n, self.q
+        sf = segs.astype(np.float64)
+        full = int(segs[-1]) + 1
         fmean = sf * q / n
         fsd = np.sqrt(sf * (q / n) * ((n - q) / n) * ((n - sf) / max(n - 1, 1)))
         fwidth = int(min(full, width + 64 + np.max(np.ceil(12.0 * fsd + fmean))))
@@ -311,7 +311,7 @@ class _Search:
             with np.errstate(invalid="ignore"):
                 tail = np.logaddexp.accumulate(false[:, ::-1], axis=1)[:, ::-1]
             if fwidth == full:
-                break
+                return tail, fwidth
             kmax = np.minimum(q, segs)
             last, prev = false[:, -1], false[:, -2]
             with np.errstate(invalid="ignore"):
@@ -320,8 +320,20 @@ class _Search:
             ref = tail[:, min(width, fwidth) - 1]
             good = (kmax < fwidth) | ((lr < 0) & (bound <= ref - 45.0))
             if np.all(good):
-                break
+                return tail, fwidth
             fwidth = full
+
+    def block(self, s_lo, s_hi, cost_limit):
+        """Classify every (s, D) with s in [s_lo, s_hi] and cost <= limit.
+
+        Returns arrays (cost, s, D, theta, log_p1, status) over the pairs
+        whose recall target can be met, where theta is the largest threshold
+        meeting it and status is 1 (meets the false-hit target too), 0 (needs
+        the exact mixture) or -1 (fails it).
+        """
+        segs = np.arange(s_lo, s_hi + 1)
+        miss, width = self._miss_columns(segs)
+        tail, fwidth = self._false_hit_tails(segs, width)
         cols = np.arange(width)[None, :]
         below_s = cols < segs[:, None]
         rows = np.arange(segs.size)
@@ -418,6 +430,22 @@ def plan(bits, weight, *, false_hit, capacity, noise=0.0, recall=0.999,
     >>> p.false_hit_per_query <= 1e-9 and p.recall >= 0.999
     True
     """
+    search = _Search(*_checked_targets(bits, weight, false_hit, capacity, noise, recall, max_detectors))
+    want = 1 + _ALTERNATIVES
+    feasible, cost_bound, seen = _feasible_pairs(search, want)
+    if not feasible:
+        raise PlanError(_impossible(search, seen))
+
+    ranked = [(cost, s, D, th) for (s, D), (cost, th) in feasible.items()
+              if cost <= cost_bound]
+    lps = search.exact_many([(s, th, D) for _, s, D, th in ranked])
+    order = sorted(zip(ranked, lps), key=lambda e: (e[0][0], e[1], e[0][2]))
+    plans = [_make_plan(search, s, th, D, lp) for (_, s, D, th), lp in order[:want]]
+    return dataclasses.replace(plans[0], alternatives=tuple(plans[1:]))
+
+
+def _checked_targets(bits, weight, false_hit, capacity, noise, recall, max_detectors):
+    """The planner's arguments as plain numbers, or TypeError / ValueError quoting the bad one."""
     n = _scalar_int("bits", bits)
     a = _scalar_int("weight", weight)
     F = _scalar_real("false_hit", false_hit)
@@ -442,12 +470,19 @@ def plan(bits, weight, *, false_hit, capacity, noise=0.0, recall=0.999,
     if max_d < 1:
         raise ValueError(f"max_detectors={max_d} must be >= 1")
 
-    search = _Search(n, a, F, M, rho, R, max_d)
-    want = 1 + _ALTERNATIVES
+    return n, a, F, M, rho, R, max_d
+
+
+def _feasible_pairs(search, want):
+    """Every (sample size, detectors) that meets both targets, up to the ``want``-th cheapest cost.
+
+    Returns ``({(s, D): (cost, theta)}, cost bound, rows seen for PlanError)``.
+    """
     feasible = {}      # (s, D) -> (cost, theta)
     pending = []       # borderline pairs: (cost, s, D, theta)
     seen = []          # (log p1, s, D, theta): recall met, for PlanError
     cost_bound = math.inf
+    a = search.a
     s_lo, size = 1, 16
     while s_lo <= a and s_lo <= cost_bound:
         s_hi = min(a, s_lo + size - 1)
@@ -472,15 +507,7 @@ def plan(bits, weight, *, false_hit, capacity, noise=0.0, recall=0.999,
         cost_bound = _nth_cheapest([c for c, _ in feasible.values()], want)
         i += len(batch)
 
-    if not feasible:
-        raise PlanError(_impossible(search, seen))
-
-    ranked = [(cost, s, D, th) for (s, D), (cost, th) in feasible.items()
-              if cost <= cost_bound]
-    lps = search.exact_many([(s, th, D) for _, s, D, th in ranked])
-    order = sorted(zip(ranked, lps), key=lambda e: (e[0][0], e[1], e[0][2]))
-    plans = [_make_plan(search, s, th, D, lp) for (_, s, D, th), lp in order[:want]]
-    return dataclasses.replace(plans[0], alternatives=tuple(plans[1:]))
+    return feasible, cost_bound, seen
 
 
 def _make_plan(search, s, th, D, lp):

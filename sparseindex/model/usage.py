@@ -22,7 +22,7 @@ def _per_bit(value, name, what):
         raise ValueError(f"{name} must be a 1-D array of {what}, got {short(value)}")
     arr = np.asarray(value)
     if arr.dtype == np.bool_ or arr.dtype.kind not in "iuf":
-        raise ValueError(f"{name} must hold numbers, got dtype {arr.dtype}")
+        raise TypeError(f"{name} must hold numbers, got dtype {arr.dtype}")
     if arr.size == 0:
         raise ValueError(f"{name} must not be empty (one entry per bit)")
     return arr.astype(np.float64)
@@ -608,6 +608,30 @@ def _codes_csr(codes, bits):
     return code_ptr, det_ptr, flat
 
 
+def _per_code_chances(p, q, code_ptr, det_ptr, flat, theta, exact):
+    """Each sampled code's chance that a detector fires: exact where ``exact``, else the union bound."""
+    m = code_ptr.size - 1
+    pt, qt = _centred(p, q)
+    values = np.empty(m)
+    if np.all(exact):
+        fires, quiet = _fire_masses(pt, qt, code_ptr, det_ptr, flat, q, theta)
+        values[:] = _ratio(fires, quiet, False)
+    elif np.any(exact):
+        sel = np.flatnonzero(exact)
+        sub_ptr, sub_det, sub_flat = _sub_codes(code_ptr, det_ptr, flat, sel)
+        fires, quiet = _fire_masses(pt, qt, sub_ptr, sub_det, sub_flat, q, theta)
+        values[sel] = _ratio(fires, quiet, False)
+    if not np.all(exact):
+        sel = np.flatnonzero(~exact)
+        sub_ptr, sub_det, sub_flat = _sub_codes(code_ptr, det_ptr, flat, sel)
+        singles = np.arange(sub_det.size, dtype=np.int64)
+        fires, quiet = _fire_masses(pt, qt, singles, sub_det, sub_flat, q, theta)
+        each = _ratio(fires, quiet, False)
+        sums = np.add.reduceat(each, sub_ptr[:-1])
+        values[sel] = np.minimum(1.0, sums)
+    return values
+
+
 def usage_false_hits(p, codes, threshold, query_weight, items, *,
                      exact_limit=1 << 20):
     """Estimate the expected false hits per unrelated query of a whole store.
@@ -674,24 +698,7 @@ def usage_false_hits(p, codes, threshold, query_weight, items, *,
     limit = check_count("exact_limit", exact_limit, minimum=1)
     work, nd = _union_work(code_ptr, det_ptr, theta)
     exact = (work <= limit) & (nd <= 62)
-    pt, qt = _centred(p, q)
-    values = np.empty(m)
-    if np.all(exact):
-        fires, quiet = _fire_masses(pt, qt, code_ptr, det_ptr, flat, q, theta)
-        values[:] = _ratio(fires, quiet, False)
-    elif np.any(exact):
-        sel = np.flatnonzero(exact)
-        sub_ptr, sub_det, sub_flat = _sub_codes(code_ptr, det_ptr, flat, sel)
-        fires, quiet = _fire_masses(pt, qt, sub_ptr, sub_det, sub_flat, q, theta)
-        values[sel] = _ratio(fires, quiet, False)
-    if not np.all(exact):
-        sel = np.flatnonzero(~exact)
-        sub_ptr, sub_det, sub_flat = _sub_codes(code_ptr, det_ptr, flat, sel)
-        singles = np.arange(sub_det.size, dtype=np.int64)
-        fires, quiet = _fire_masses(pt, qt, singles, sub_det, sub_flat, q, theta)
-        each = _ratio(fires, quiet, False)
-        sums = np.add.reduceat(each, sub_ptr[:-1])
-        values[sel] = np.minimum(1.0, sums)
+    values = _per_code_chances(p, q, code_ptr, det_ptr, flat, theta, exact)
     mean = float(values.mean())
     if m == items:
         se = 0.0

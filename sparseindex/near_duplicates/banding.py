@@ -37,8 +37,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .._numba import kernels as _kernels
-from .._numba.banding import (band_keys_kernel, bit_usage, gather_matches, pair_overlaps, run_pair_counts,
-                              verify_positions)
+from .._numba.banding import band_keys_kernel, gather_matches, pair_overlaps, run_pair_counts, verify_positions
 from .._numba.config import PARALLEL_LOCK, thread_count
 from .._numba.kernels import mix64
 
@@ -71,8 +70,8 @@ SIGNATURE_CHUNK = 1 << 16
 VERIFY_CHUNK = 1 << 24
 
 #: Cost constants of the work model, seconds per unit of work on one core,
-#: measured on the project's 2-core machine (AMD EPYC, numba 0.68) with
-#: 2048-bit codes; only their ratios matter for the choices made with them.
+#: fitted with ``benchmarks/bench_near_duplicates.py`` (where and how: DEVELOPERS.md,
+#: "Measured choices"); only their ratios matter for the choices made with them.
 #: ``hash``: one (set bit, hash function) evaluation of the signatures;
 #: ``key``: one band key sorted and scanned (per code and band, 10^6 keys);
 #: ``pair``: one candidate pair verified (random rows, AND + popcount);
@@ -90,6 +89,19 @@ COST = {
 # ---------------------------------------------------------------------------
 # analytic side: S-curve, Jaccard floor, band choice
 # ---------------------------------------------------------------------------
+
+
+def bit_usage(words, bits):
+    """How many rows set each bit (kernel ``bit_usage``).
+
+    Examples
+    --------
+    >>> bit_usage(np.array([[0b0111], [0b1110]], dtype=np.uint64), 4).tolist()
+    [1, 2, 2, 1]
+    """
+    none = np.zeros(0, dtype=np.int64)
+    with PARALLEL_LOCK:
+        return _kernels.bit_usage(words, none, none.astype(bool))[:bits]
 
 
 def s_curve(similarity, bands: int, rows: int):

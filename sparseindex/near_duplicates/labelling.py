@@ -37,22 +37,32 @@ wrong:
 Codes lighter than ``min_overlap`` can match nothing and stay alone;
 exact copies are grouped first, so a code repeated many times costs nothing
 quadratic.
+
+Every merge rests on a pair verified exactly (AND + popcount), so a code is
+never merged with one it does not match (precision 1). With banding a
+matching pair can be missed with chance at most ``1 - recall`` (the
+summary's ``predicted_recall``); a missed pair splits a group or, in mode
+``"first"``, may give a code another representative. Cost: banding
+O(set bits · bands · rows + codes · bands · log codes + candidates); index
+about ``sum over bits of usage**2 / 2`` counter updates. Memory: the codes
+plus ``8 · bands`` bytes per code (banding) or the postings of a store
+(index).
 """
 
 from __future__ import annotations
 
-import math
 import time
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field
-from numbers import Integral, Real
 
 import numpy as np
 
 from . import banding as _banding
 from .._numba import unionfind as _unionfind
 from .._numba.config import thread_count
-from ..codes import Codes, as_codes
-from ..store.single import Store
+from .. import validation
+from ..codes import Codes, adopt_words, as_codes, packed_words
+from ..store import Store
 
 __all__ = ["label_near_duplicates", "NearDuplicateSummary", "TqdmProgress", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
 
@@ -201,8 +211,7 @@ def _as_batch(codes, bits) -> Codes:
     import scipy.sparse as sp
 
     if bits is not None:
-        if isinstance(bits, (bool, np.bool_)) or not isinstance(bits, Integral) or bits < 1:
-            raise ValueError(f"label_near_duplicates: bits={bits!r} must be a positive integer")
+        bits = validation.integer("bits", bits, minimum=1, what="label_near_duplicates")
         bits = int(bits)
     if bits is None:
         if isinstance(codes, Codes):
@@ -222,8 +231,7 @@ def _as_batch(codes, bits) -> Codes:
 
 
 def _check_min_overlap(min_overlap, bits) -> int:
-    if isinstance(min_overlap, (bool, np.bool_)) or not isinstance(min_overlap, Integral):
-        raise TypeError(f"label_near_duplicates: min_overlap={min_overlap!r} must be an integer")
+    validation.integer("min_overlap", min_overlap, what="label_near_duplicates")
     if min_overlap < 1:
         raise ValueError(f"label_near_duplicates: min_overlap={min_overlap} must be >= 1 (0 would merge every code)")
     if min_overlap > bits:
@@ -231,41 +239,19 @@ def _check_min_overlap(min_overlap, bits) -> int:
     return int(min_overlap)
 
 
-def _check_choice(name, value, allowed):
-    if not isinstance(value, str) or value not in allowed:
-        raise ValueError(f"label_near_duplicates: {name}={value!r} must be one of {', '.join(repr(a) for a in allowed)}")
-    return value
-
-
-def _check_recall(recall) -> float:
-    if isinstance(recall, (bool, np.bool_)) or not isinstance(recall, Real) or not math.isfinite(recall):
-        raise ValueError(f"label_near_duplicates: recall={recall!r} must be a number in (0, 1]")
-    if not 0.0 < recall <= 1.0:
-        raise ValueError(f"label_near_duplicates: recall={recall!r} must be in (0, 1]")
-    return float(recall)
-
-
 def _check_bands(bands):
     if bands is None:
         return None
-    try:
-        b, r = bands
-    except (TypeError, ValueError):
-        raise ValueError(f"label_near_duplicates: bands={bands!r} must be a pair (bands, rows) of positive integers") from None
+    if not isinstance(bands, (tuple, list)):
+        raise TypeError(f"label_near_duplicates: bands={validation.quoted(bands)} must be a pair (bands, rows) "
+                        "of positive integers")
+    if len(bands) != 2:
+        raise ValueError(f"label_near_duplicates: bands={validation.quoted(bands)} must be a pair (bands, rows) "
+                         "of positive integers")
+    b, r = bands
     for name, v in (("bands", b), ("rows", r)):
-        if isinstance(v, (bool, np.bool_)) or not isinstance(v, Integral) or v < 1:
-            raise ValueError(f"label_near_duplicates: bands={bands!r}: {name}={v!r} must be a positive integer")
+        validation.integer(name, v, minimum=1, what=f"label_near_duplicates: bands={bands!r}")
     return int(b), int(r)
-
-
-def _check_seed(seed) -> int:
-    if seed is None:
-        return int(np.random.SeedSequence().generate_state(1, dtype=np.uint64)[0])
-    if isinstance(seed, (bool, np.bool_)) or not isinstance(seed, Integral):
-        raise TypeError(f"label_near_duplicates: seed={seed!r} must be an integer or None")
-    if not 0 <= seed < 2**64:
-        raise ValueError(f"label_near_duplicates: seed={seed} must be in 0..2**64-1")
-    return int(seed)
 
 
 def _progress_callback(progress):
@@ -456,19 +442,8 @@ def _labels(mode, uid, first, weights_u, lo, hi, ov):
 # ---------------------------------------------------------------------------
 
 
-def label_near_duplicates(
-    codes,
-    *,
-    min_overlap,
-    mode="first",
-    method="auto",
-    recall=0.99,
-    bands=None,
-    seed=None,
-    bits=None,
-    progress=False,
-    return_summary=False,
-):
+def label_near_duplicates(codes, *, min_overlap, mode="first", method="auto", recall=0.99, bands=None, seed=None,
+                          bits=None, progress=False, return_summary=False):
     """Label near-duplicate codes: each label is the index of its group's representative.
 
     Parameters
@@ -517,16 +492,9 @@ def label_near_duplicates(
 
     Notes
     -----
-    Every merge rests on a pair verified exactly (AND + popcount), so a
-    code is never merged with one it does not match (precision 1). With
-    banding a matching pair can be missed with chance at most ``1 -
-    recall`` (the summary's ``predicted_recall``); a missed pair splits a
-    group or, in mode ``"first"``, may give a code another representative.
-
-    Cost: banding O(set bits · bands · rows + codes · bands · log codes +
-    candidates); index about ``sum over bits of usage**2 / 2`` counter
-    updates. Memory: the codes plus ``8 · bands`` bytes per code (banding)
-    or the postings of a store (index).
+    Precision is 1 (every merge rests on a pair verified exactly); with
+    banding a matching pair is missed with chance at most ``1 - recall``.
+    Costs and memory: see the module documentation.
 
     Examples
     --------
@@ -539,78 +507,105 @@ def label_near_duplicates(
     >>> summary.groups, summary.duplicates, summary.largest_group, summary.method
     (2, 2, 3, 'index')
     """
-    t_start = time.perf_counter()
+    clock = _Stopwatch()
     batch = _as_batch(codes, bits)
-    min_overlap = _check_min_overlap(min_overlap, batch.bits)
-    mode = _check_choice("mode", mode, _MODES)
-    method = _check_choice("method", method, _METHODS)
-    recall = _check_recall(recall)
-    bands = _check_bands(bands)
-    if bands is not None and method == "index":
-        raise ValueError(f"label_near_duplicates: bands={bands!r} goes with method='banding', not method='index'")
-    if not isinstance(return_summary, (bool, np.bool_)):
-        raise TypeError(f"label_near_duplicates: return_summary={return_summary!r} must be True or False")
-    seed = _check_seed(seed)
+    request = _Request.checked(batch.bits, min_overlap, mode, method, recall, bands, seed, return_summary)
     callback, finish = _progress_callback(progress)
     try:
-        seconds = {}
-        t0 = time.perf_counter()
-        words, weights = batch._words, batch._weights
-        uid, first, copies = _distinct(words, weights, min_overlap)
-        words_u = np.ascontiguousarray(words[first])
-        weights_u = weights[first]
-        seconds["copies"] = time.perf_counter() - t0
-
-        t0 = time.perf_counter()
-        picked, reason, choice, predicted, worst = _choose(
-            method, recall, bands, words_u, weights_u, batch.bits, min_overlap, seed)
-        seconds["choice"] = time.perf_counter() - t0
-
-        t0 = time.perf_counter()
-        if picked == "index":
-            lo, hi, ov, checked = _index_pairs(Codes._wrap(words_u, batch.bits), min_overlap, callback)
-        else:
-            lo, hi, ov, checked = _banding.candidate_pairs(
-                words_u, weights_u, min_overlap=min_overlap, bands=choice.bands, rows=choice.rows, seed=seed,
-                progress=callback)
-        seconds["pairs"] = time.perf_counter() - t0
-
-        t0 = time.perf_counter()
-        labels = _labels(mode, uid, first, weights_u, lo, hi, ov)
-        seconds["grouping"] = time.perf_counter() - t0
+        labels, found = _label(batch, request, clock, callback)
     finally:
         if finish is not None:
             finish()
-    if not return_summary:
-        return labels
+    return _summarised(labels, found, batch.bits, request, clock) if request.return_summary else labels
+
+
+def _label(batch, request, clock, callback):
+    """Labels, and what the summary reports of how they were found."""
+    m = request.min_overlap
+    with clock.lap("copies"):
+        words, weights = packed_words(batch), batch.weights
+        uid, first, copies = _distinct(words, weights, m)
+        words_u = np.ascontiguousarray(words[first])
+        weights_u = weights[first]
+    with clock.lap("choice"):
+        picked, reason, choice, predicted, worst = _choose(
+            request.method, request.recall, request.bands, words_u, weights_u, batch.bits, m, request.seed)
+    with clock.lap("pairs"):
+        if picked == "index":
+            lo, hi, ov, checked = _index_pairs(adopt_words(words_u, batch.bits), m, callback)
+        else:
+            lo, hi, ov, checked = _banding.candidate_pairs(
+                words_u, weights_u, min_overlap=m, bands=choice.bands, rows=choice.rows, seed=request.seed,
+                progress=callback)
+    with clock.lap("grouping"):
+        labels = _labels(request.mode, uid, first, weights_u, lo, hi, ov)
+    found = dict(picked=picked, reason=reason, choice=choice, predicted=predicted, worst=worst, copies=copies,
+                 light=int(np.count_nonzero(uid < 0)), distinct=int(first.shape[0]), pairs=int(lo.shape[0]),
+                 checked=int(checked))
+    return labels, found
+
+
+def _summarised(labels, found, bits, request, clock):
     n = labels.shape[0]
     sizes = np.bincount(labels, minlength=n) if n else np.zeros(0, dtype=np.int64)
     groups = int(np.count_nonzero(sizes))
-    seconds["total"] = time.perf_counter() - t_start
-    summary = NearDuplicateSummary(
-        codes=n,
-        bits=batch.bits,
-        min_overlap=min_overlap,
-        mode=mode,
-        method=picked,
-        reason=reason,
-        groups=groups,
-        duplicates=n - groups,
-        largest_group=int(sizes.max()) if n else 0,
-        exact_copies=copies,
-        light_codes=int(np.count_nonzero(uid < 0)),
-        distinct_codes=int(first.shape[0]),
-        matched_pairs=int(lo.shape[0]),
-        candidates_verified=int(checked),
+    picked, choice, worst = found["picked"], found["choice"], found["worst"]
+    return labels, NearDuplicateSummary(
+        codes=n, bits=bits, min_overlap=request.min_overlap, mode=request.mode, method=picked,
+        reason=found["reason"], groups=groups, duplicates=n - groups, largest_group=int(sizes.max()) if n else 0,
+        exact_copies=found["copies"], light_codes=found["light"], distinct_codes=found["distinct"],
+        matched_pairs=found["pairs"], candidates_verified=found["checked"],
         predicted_recall=1.0 if picked == "index" else float(choice.recall),
         worst_jaccard=None if worst is None else float(worst),
-        bands=None if choice is None else int(choice.bands),
-        rows=None if choice is None else int(choice.rows),
-        seed=None if picked == "index" else seed,
-        predicted_seconds={k: float(v) for k, v in predicted.items()},
-        seconds={k: float(v) for k, v in seconds.items()},
+        bands=None if choice is None else int(choice.bands), rows=None if choice is None else int(choice.rows),
+        seed=None if picked == "index" else request.seed,
+        predicted_seconds={k: float(v) for k, v in found["predicted"].items()}, seconds=clock.total(),
     )
-    return labels, summary
+
+
+class _Stopwatch:
+    """Seconds spent in each named stage, plus the total since creation."""
+
+    def __init__(self):
+        self.start = time.perf_counter()
+        self.seconds = {}
+
+    @contextmanager
+    def lap(self, name):
+        t0 = time.perf_counter()
+        try:
+            yield
+        finally:
+            self.seconds[name] = time.perf_counter() - t0
+
+    def total(self) -> dict:
+        return {**{k: float(v) for k, v in self.seconds.items()}, "total": float(time.perf_counter() - self.start)}
+
+
+@dataclass(frozen=True)
+class _Request:
+    """The checked arguments of one labelling call."""
+
+    min_overlap: int
+    mode: str
+    method: str
+    recall: float
+    bands: "tuple | None"
+    seed: int
+    return_summary: bool
+
+    @classmethod
+    def checked(cls, bits, min_overlap, mode, method, recall, bands, seed, return_summary) -> "_Request":
+        what = "label_near_duplicates"
+        min_overlap = _check_min_overlap(min_overlap, bits)
+        mode = validation.choice("mode", mode, _MODES, what=what)
+        method = validation.choice("method", method, _METHODS, what=what)
+        recall = validation.fraction("recall", recall, what=what)
+        bands = _check_bands(bands)
+        if bands is not None and method == "index":
+            raise ValueError(f"{what}: bands={bands!r} goes with method='banding', not method='index'")
+        return cls(min_overlap, mode, method, recall, bands, validation.seed("seed", seed, what=what),
+                   validation.flag("return_summary", return_summary, what=what))
 
 
 # ---------------------------------------------------------------------------
@@ -663,7 +658,7 @@ def planted_duplicates(count, bits, weight, *, fraction=0.1, max_changed=8, chai
         generation[i] = generation[src[i]] + 1
     for g in range(1, int(generation.max(initial=0)) + 1):
         batch = np.flatnonzero(generation == g)
-        rows[batch] = _near_copies(rows[src[batch]], changed[batch], bits, rng)
+        rows[batch] = near_copies(rows[src[batch]], changed[batch], bits, rng)
     perm = rng.permutation(count)
     inverse = np.empty(count, dtype=np.int64)
     inverse[perm] = np.arange(count)
@@ -674,12 +669,10 @@ def planted_duplicates(count, bits, weight, *, fraction=0.1, max_changed=8, chai
 
 
 def _kernels_unpack(codes: Codes) -> np.ndarray:
-    from .._numba import kernels as _kernels
-
-    return _kernels.unpack_indices(codes._words, codes._weights)[1]
+    return codes.to_csr()[1]
 
 
-def _near_copies(sources, k, bits, rng):
+def near_copies(sources, k, bits, rng):
     """Each row of ``sources`` with ``k[row]`` of its bits swapped for bits outside it."""
     n, weight = sources.shape
     out = sources.copy()

@@ -46,9 +46,8 @@ APPEND_CHUNK_ROWS = 2**18
 #: What checking one candidate costs (finding it among the counters,
 #: sorting it among the fired, reading its code, AND + popcount), in
 #: postings counted; it sets how far a query's scan may lower its threshold
-#: (kernel ``_prefix_plan``). ``benchmarks/bench_prefix.py`` measured 272
-#: at 10^6 codes on 2026-12-02 (with the counting loop as it is now); the
-#: query time is flat within 2% from 64 to 4096.
+#: (kernel ``_prefix_plan``). Chosen with ``benchmarks/bench_prefix.py``
+#: (DEVELOPERS.md, "Measured choices"); query time hardly depends on it.
 VERIFY_COST_POSTINGS = 256.0
 
 
@@ -204,14 +203,19 @@ class DetectorBank:
         ``max_weight`` is the heaviest stored code's weight.
         """
         bank = cls(bits, threshold, sample_size, detectors, seed, block_span)
-        bank.rows = rows
-        bank._post = postings
-        bank._used = postings.shape[0]
-        bank._block_indptr, bank._block_lo, bank._block_hi = block_indptr, block_lo, block_hi
-        bank._max_sample = max_sample
-        bank._max_weight = max_weight
-        bank._bit_postings = np.diff(block_indptr, axis=1).sum(axis=0) if block_lo.shape[0] else bank._bit_postings
+        bank.restore(rows, postings, block_indptr, block_lo, block_hi, max_sample, max_weight)
         return bank
+
+    def restore(self, rows, postings, block_indptr, block_lo, block_hi, max_sample, max_weight) -> None:
+        """Adopt the arrays of :meth:`from_arrays` into this (empty) bank."""
+        self.rows = rows
+        self._post = postings
+        self._used = postings.shape[0]
+        self._block_indptr, self._block_lo, self._block_hi = block_indptr, block_lo, block_hi
+        self._max_sample = max_sample
+        self._max_weight = max_weight
+        if block_lo.shape[0]:
+            self._bit_postings = np.diff(block_indptr, axis=1).sum(axis=0)
 
     def arrays(self):
         """``(postings, block_indptr, block_lo, block_hi)``, used part only (views)."""
@@ -284,6 +288,11 @@ class DetectorBank:
     def nbytes(self) -> int:
         """Bytes held by the postings buffer and block tables."""
         return self._post.nbytes + self._block_indptr.nbytes + self._block_lo.nbytes + self._block_hi.nbytes
+
+    @property
+    def max_weight(self) -> int:
+        """Weight of the heaviest code ever appended (the scan lowers its threshold only below it)."""
+        return self._max_weight
 
     @property
     def whole_codes(self) -> bool:
@@ -418,7 +427,7 @@ class DetectorBank:
         ]
         return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
 
-    def _check(self, expected_samples=None) -> None:
+    def check(self, expected_samples=None) -> None:
         """Invariants: block ranges, offsets monotone and in range, ids sorted.
 
         ``expected_samples`` (optional ``(det_indptr, det_bits)`` for every

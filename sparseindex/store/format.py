@@ -31,6 +31,7 @@ import numpy as np
 
 from .._numba import kernels as _kernels
 from .._numba.config import PARALLEL_LOCK
+from ..version import __version__
 from ..errors import FormatVersionWarning, StoreFormatError
 
 MAGIC = b"\x89SIDX\r\n\x1a"
@@ -151,7 +152,7 @@ def encode(state: StoreState):
         pieces.append(raw)
     header = {
         "kind": KIND,
-        "written_by": _library_version(),
+        "written_by": library_version(),
         "params": {
             "bits": state.bits, "threshold": state.threshold, "sample_size": state.sample_size,
             "detectors": state.detectors, "seed": state.seed, "block_span": state.block_span,
@@ -187,9 +188,7 @@ def encode(state: StoreState):
     return head, list(zip(offsets, pieces)), size
 
 
-def _library_version() -> str:
-    from .. import __version__
-
+def library_version() -> str:
     return f"sparseindex {__version__}"
 
 
@@ -223,7 +222,7 @@ def dumps(state: StoreState) -> bytes:
     return bytes(out)
 
 
-def _write_all(fd: int, view: memoryview) -> None:
+def write_all(fd: int, view: memoryview) -> None:
     view = view.cast("B") if view.format != "B" else view
     while view.nbytes:
         n = os.write(fd, view[:_WRITE_CHUNK])
@@ -232,7 +231,7 @@ def _write_all(fd: int, view: memoryview) -> None:
         view = view[n:]
 
 
-def _fsync_directory(directory: str) -> None:
+def fsync_directory(directory: str) -> None:
     fd = os.open(directory, os.O_RDONLY)
     try:
         os.fsync(fd)
@@ -271,7 +270,7 @@ def save_file(path, state: StoreState) -> None:
     try:
         try:
             for chunk in _chunks(head, pieces):
-                _write_all(fd, chunk)
+                write_all(fd, chunk)
             os.fsync(fd)
         finally:
             os.close(fd)
@@ -285,7 +284,7 @@ def save_file(path, state: StoreState) -> None:
         os.replace(tmp, path)
         tmp = None
         try:
-            _fsync_directory(directory)
+            fsync_directory(directory)
         except BaseException:
             if backup is not None:
                 os.replace(backup, path)
@@ -305,7 +304,7 @@ def save_file(path, state: StoreState) -> None:
 # ---------------------------------------------------------------------------
 
 
-def _no_duplicates(pairs):
+def no_duplicate_keys(pairs):
     out = {}
     for key, value in pairs:
         if key in out:
@@ -314,7 +313,7 @@ def _no_duplicates(pairs):
     return out
 
 
-def _reject_constant(name):
+def reject_constant(name):
     raise ValueError(f"{name} is not allowed")
 
 
@@ -350,7 +349,7 @@ def _parse_header(text: bytes, crc: int, path):
         _fail("header", "CRC32 mismatch: the header is corrupt", path)
     try:
         header = json.loads(
-            text.decode("utf-8"), object_pairs_hook=_no_duplicates, parse_constant=_reject_constant
+            text.decode("utf-8"), object_pairs_hook=no_duplicate_keys, parse_constant=reject_constant
         )
     except (ValueError, RecursionError) as exc:  # UnicodeDecodeError and JSONDecodeError are ValueErrors
         _fail("header", f"not valid JSON: {exc}", path)
@@ -525,50 +524,9 @@ def _view(buf: np.ndarray, dtype: str, shape, offset: int, nbytes: int) -> np.nd
     return arr
 
 
-def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
-    """CRCs, padding and every structural property kernels rely on."""
-    for lo, hi in gaps:
-        if hi > lo and buf[lo:hi].any():
-            _fail("padding", f"bytes {lo}..{hi - 1} between sections are not zero", path)
-    for offset, nbytes, crc, name in unknown:
-        if zlib.crc32(buf[offset : offset + nbytes]) != crc:
-            _fail(name, "CRC32 mismatch: the section is corrupt", path)
-    arrays = {}
-    for name, dtype, shape, offset, nbytes, crc in layout:
-        if zlib.crc32(buf[offset : offset + nbytes]) != crc:
-            _fail(name, "CRC32 mismatch: the section is corrupt", path)
-        arrays[name] = _view(buf, dtype, shape, offset, nbytes)
-    rows, bits, detectors = v["rows"], v["bits"], v["detectors"]
-
-    removed_raw = arrays["removed"]
-    if rows and removed_raw.max() > 1:
-        bad = int(np.flatnonzero(removed_raw > 1)[0])
-        _fail("removed", f"row {bad} has flag {int(removed_raw[bad])}, not 0 or 1", path)
-    if int(removed_raw.sum(dtype=np.int64)) != v["removed_count"]:
-        _fail("removed", f"{int(removed_raw.sum(dtype=np.int64))} rows flagged but counts say {v['removed_count']}",
-              path)
-    removed = removed_raw.view(np.bool_)
-
-    row_ids = arrays.get("row_ids")
-    if row_ids is not None and rows:
-        steps = np.flatnonzero(np.diff(row_ids) <= 0)
-        if steps.size:
-            _fail("row_ids", f"ids not strictly ascending at row {int(steps[0]) + 1}", path)
-        if row_ids[0] < 0 or row_ids[-1] >= v["next_id"]:
-            _fail("row_ids", f"ids {int(row_ids[0])}..{int(row_ids[-1])} outside 0..{v['next_id'] - 1}", path)
-
-    words = arrays["words"]
-    tail = bits % 64
-    if tail and rows:
-        dirty = np.flatnonzero(words[:, -1] >> np.uint64(tail))
-        if dirty.size:
-            _fail("words", f"row {int(dirty[0])} has bits set above bits={bits} (padding must be zero)", path)
-    weights = _kernels.row_weights(words)
-    light = np.flatnonzero(weights < v["threshold"])
-    if light.size:
-        r = int(light[0])
-        _fail("words", f"row {r} has {int(weights[r])} set bits, fewer than threshold={v['threshold']}", path)
-
+def _validate_blocks(arrays, words, weights, v, path):
+    """Block ranges, offsets and every posting against the codes (kernel ``check_postings``)."""
+    rows, detectors = v["rows"], v["detectors"]
     lo, hi, indptr, post = arrays["block_lo"], arrays["block_hi"], arrays["block_indptr"], arrays["postings"]
     span = v["block_span"]
     if v["blocks"]:
@@ -603,6 +561,53 @@ def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
             _fail("postings", messages[int(problem)], path)
     elif post.shape[0]:
         _fail("postings", f"{post.shape[0]} postings in a store without rows", path)
+
+
+def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
+    """CRCs, padding and every structural property kernels rely on."""
+    for lo, hi in gaps:
+        if hi > lo and buf[lo:hi].any():
+            _fail("padding", f"bytes {lo}..{hi - 1} between sections are not zero", path)
+    for offset, nbytes, crc, name in unknown:
+        if zlib.crc32(buf[offset : offset + nbytes]) != crc:
+            _fail(name, "CRC32 mismatch: the section is corrupt", path)
+    arrays = {}
+    for name, dtype, shape, offset, nbytes, crc in layout:
+        if zlib.crc32(buf[offset : offset + nbytes]) != crc:
+            _fail(name, "CRC32 mismatch: the section is corrupt", path)
+        arrays[name] = _view(buf, dtype, shape, offset, nbytes)
+    rows, bits = v["rows"], v["bits"]
+
+    removed_raw = arrays["removed"]
+    if rows and removed_raw.max() > 1:
+        bad = int(np.flatnonzero(removed_raw > 1)[0])
+        _fail("removed", f"row {bad} has flag {int(removed_raw[bad])}, not 0 or 1", path)
+    if int(removed_raw.sum(dtype=np.int64)) != v["removed_count"]:
+        _fail("removed", f"{int(removed_raw.sum(dtype=np.int64))} rows flagged but counts say {v['removed_count']}",
+              path)
+    removed = removed_raw.view(np.bool_)
+
+    row_ids = arrays.get("row_ids")
+    if row_ids is not None and rows:
+        steps = np.flatnonzero(np.diff(row_ids) <= 0)
+        if steps.size:
+            _fail("row_ids", f"ids not strictly ascending at row {int(steps[0]) + 1}", path)
+        if row_ids[0] < 0 or row_ids[-1] >= v["next_id"]:
+            _fail("row_ids", f"ids {int(row_ids[0])}..{int(row_ids[-1])} outside 0..{v['next_id'] - 1}", path)
+
+    words = arrays["words"]
+    tail = bits % 64
+    if tail and rows:
+        dirty = np.flatnonzero(words[:, -1] >> np.uint64(tail))
+        if dirty.size:
+            _fail("words", f"row {int(dirty[0])} has bits set above bits={bits} (padding must be zero)", path)
+    weights = _kernels.row_weights(words)
+    light = np.flatnonzero(weights < v["threshold"])
+    if light.size:
+        r = int(light[0])
+        _fail("words", f"row {r} has {int(weights[r])} set bits, fewer than threshold={v['threshold']}", path)
+
+    _validate_blocks(arrays, words, weights, v, path)
     max_sample = 0
     if rows:
         top = int(weights.max())

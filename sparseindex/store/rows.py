@@ -1,0 +1,272 @@
+"""The row table of a store, and the usage counts of its live codes.
+
+A stored code lives in a *row*: its packed words, its weight and a removal
+flag. Ids are handed out 0, 1, 2, ... and never reused; rows and ids
+coincide (``row_ids`` is None) until ``compact`` drops removed rows or an
+``add`` gives ids with gaps, after which a sorted ``row -> id`` table maps
+between them. A table never changes in place where a reader could see it:
+``prepare_append`` fills new buffers or the unused room past ``rows``, and
+``commit`` swaps them in, which is what a store does under its write lock.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from .. import validation
+from .._numba import kernels
+from .._numba.config import PARALLEL_LOCK
+
+__all__ = ["RowTable", "PendingRows", "UsageCounts"]
+
+
+class PendingRows:
+    """New row arrays for an append, ready to be swapped in by :meth:`RowTable.commit`."""
+
+    __slots__ = ("words", "weights", "removed", "row_ids", "rows", "next_id")
+
+    def __init__(self, words, weights, removed, row_ids, rows, next_id):
+        self.words, self.weights, self.removed, self.row_ids = words, weights, removed, row_ids
+        self.rows, self.next_id = rows, next_id
+
+
+class RowTable:
+    """Packed codes by row, with weights, removal flags and the id <-> row map.
+
+    Examples
+    --------
+    >>> from sparseindex import Codes
+    >>> table = RowTable(16)
+    >>> batch = Codes.from_indices([[1, 2], [3]], 16)
+    >>> table.commit(table.prepare_append(batch.words, batch.weights, np.array([0, 5])))
+    >>> table.row_of(5), table.row_of(1), table.live_ids().tolist()
+    (1, -1, [0, 5])
+    >>> table.check()
+    """
+
+    def __init__(self, bits: int):
+        self.bits = bits
+        self.words = np.zeros((0, (bits + 63) // 64), dtype=np.uint64)
+        self.weights = np.zeros(0, dtype=np.int32)
+        self.removed = np.zeros(0, dtype=bool)
+        self.row_ids = None  # None: row r holds id r
+        self.rows = 0
+        self.next_id = 0
+        self.removed_count = 0
+
+    @classmethod
+    def from_arrays(cls, bits, *, words, weights, removed, row_ids, rows, next_id, removed_count) -> "RowTable":
+        """A table over already-checked arrays (a loaded file), without copying them."""
+        table = cls(bits)
+        table.adopt(words, weights, removed, row_ids, rows, next_id, removed_count)
+        return table
+
+    def adopt(self, words, weights, removed, row_ids, rows, next_id, removed_count) -> None:
+        self.words, self.weights, self.removed, self.row_ids = words, weights, removed, row_ids
+        self.rows, self.next_id, self.removed_count = rows, next_id, removed_count
+
+    # -- sizes ------------------------------------------------------------
+
+    @property
+    def live(self) -> int:
+        """Rows that hold a stored (not removed) code."""
+        return self.rows - self.removed_count
+
+    @property
+    def nbytes(self) -> int:
+        total = self.words.nbytes + self.weights.nbytes + self.removed.nbytes
+        return total + (0 if self.row_ids is None else self.row_ids.nbytes)
+
+    # -- ids <-> rows -----------------------------------------------------
+
+    def ids_of(self, rows: np.ndarray) -> np.ndarray:
+        """Ids held by ``rows`` (a new int64 array)."""
+        if self.row_ids is None:
+            return rows.astype(np.int64, copy=True)
+        return self.row_ids[rows]
+
+    def row_of(self, code_id: int) -> int:
+        """Row of a stored id, or -1 if the id was never stored or was compacted away."""
+        if code_id < 0 or code_id >= self.next_id:
+            return -1
+        if self.row_ids is None:
+            return code_id
+        r = int(np.searchsorted(self.row_ids[: self.rows], code_id))
+        return r if r < self.rows and self.row_ids[r] == code_id else -1
+
+    def rows_of(self, ids: np.ndarray):
+        """(rows, live): the row of each id (0 where none) and whether it holds a stored code."""
+        if self.row_ids is None:
+            rows = ids.copy()
+            live = (rows >= 0) & (rows < self.rows)
+        else:
+            table = self.row_ids[: self.rows]
+            rows = np.searchsorted(table, ids)
+            inside = rows < self.rows
+            rows[~inside] = 0
+            live = inside & (table[rows] == ids) if self.rows else np.zeros(ids.shape[0], dtype=bool)
+        rows[~live] = 0
+        if self.rows:
+            live &= ~self.removed[rows]
+        return rows, live
+
+    def live_rows_of(self, ids, what: str) -> np.ndarray:
+        """Rows of ``ids`` (an int or 1-D ints); KeyError naming the first one not stored."""
+        arr = validation.ids_below(ids, self.next_id, what)
+        rows, live = self.rows_of(arr)
+        if not live.all():
+            raise KeyError(f"{what}: id {int(arr[np.flatnonzero(~live)[0]])} was removed")
+        return rows
+
+    def live_rows(self) -> np.ndarray:
+        return np.flatnonzero(~self.removed[: self.rows])
+
+    def live_ids(self) -> np.ndarray:
+        """Ids of every stored code, ascending."""
+        return self.ids_of(self.live_rows())
+
+    # -- changes ----------------------------------------------------------
+
+    def prepare_append(self, words: np.ndarray, weights: np.ndarray, ids: np.ndarray, *,
+                       adopt: bool = False) -> PendingRows:
+        """Row arrays holding the current rows and ``words`` under ``ids`` (ascending, from ``next_id`` up).
+
+        Nothing a reader sees is written: growth copies into new buffers,
+        otherwise the new rows go into the room past ``rows``. ``adopt``
+        lets an empty table take ``words`` itself (a batch that never
+        changes), sparing a copy of fresh memory.
+        """
+        m, used = words.shape[0], self.rows
+        need = used + m
+        table_words, table_weights, removed, row_ids = self.words, self.weights, self.removed, self.row_ids
+        if row_ids is None and not np.array_equal(ids, np.arange(self.next_id, self.next_id + m)):
+            # ids and rows part ways here: start the row -> id table
+            row_ids = np.arange(max(table_words.shape[0], used), dtype=np.int64)
+        if adopt and used == 0:
+            return PendingRows(words, weights.astype(np.int32), np.zeros(m, dtype=bool),
+                               None if row_ids is None else ids.astype(np.int64, copy=True), need, int(ids[-1]) + 1)
+        if need > table_words.shape[0]:
+            # room first: a MemoryError here changes nothing
+            room = max(need, int(table_words.shape[0] * 1.5))
+            table_words, table_weights = _grown(table_words, room, used), _grown(table_weights, room, used)
+            removed = _grown(removed, room, used)
+            if row_ids is not None:
+                row_ids = _grown(row_ids, room, used)
+        elif row_ids is not None and need > row_ids.shape[0]:
+            row_ids = _grown(row_ids, table_words.shape[0], used)
+        table_words[used:need] = words
+        table_weights[used:need] = weights
+        removed[used:need] = False
+        if row_ids is not None:
+            row_ids[used:need] = ids
+        return PendingRows(table_words, table_weights, removed, row_ids, need, int(ids[-1]) + 1)
+
+    def commit(self, pending: PendingRows) -> None:
+        """Swap in prepared arrays; cannot fail."""
+        self.adopt(pending.words, pending.weights, pending.removed, pending.row_ids, pending.rows,
+                   pending.next_id, self.removed_count)
+
+    def mark_removed(self, rows: np.ndarray) -> None:
+        self.removed[rows] = True
+        self.removed_count += rows.shape[0]
+
+    def compacted(self) -> "RowTable":
+        """A new table of the live rows only; ids and ``next_id`` unchanged."""
+        live = ~self.removed[: self.rows]
+        kept = int(live.sum())
+        ids_kept = self.ids_of(np.flatnonzero(live))
+        return RowTable.from_arrays(
+            self.bits, words=np.ascontiguousarray(self.words[: self.rows][live]),
+            weights=self.weights[: self.rows][live].copy(), removed=np.zeros(kept, dtype=bool),
+            row_ids=None if kept == self.next_id else ids_kept, rows=kept, next_id=self.next_id, removed_count=0)
+
+    # -- derived figures --------------------------------------------------
+
+    def indices(self, rows=None):
+        """CSR (indptr, set-bit indices) of ``rows`` (None: every row)."""
+        if rows is None:
+            return kernels.unpack_indices(self.words[: self.rows], self.weights[: self.rows].astype(np.int64))
+        return kernels.unpack_indices(self.words[rows], self.weights[rows].astype(np.int64))
+
+    def bit_usage(self, rows=None) -> np.ndarray:
+        """Set-bit counts per bit of ``rows`` (None: every live row)."""
+        if rows is None:
+            if self.rows == 0:
+                return np.zeros(self.bits, dtype=np.int64)
+            pick, skip, words = np.zeros(0, dtype=np.int64), self.removed[: self.rows], self.words[: self.rows]
+        else:
+            pick, skip, words = np.asarray(rows, dtype=np.int64), np.zeros(0, dtype=bool), self.words
+            if pick.shape[0] == 0:
+                return np.zeros(self.bits, dtype=np.int64)
+        with PARALLEL_LOCK:
+            return kernels.bit_usage(words, pick, skip)[: self.bits]
+
+    def weight_hist(self, rows=None) -> np.ndarray:
+        """Codes of each weight 0..bits among ``rows`` (None: every live row)."""
+        weights = self.weights[: self.rows][~self.removed[: self.rows]] if rows is None else self.weights[rows]
+        return np.bincount(weights, minlength=self.bits + 1).astype(np.int64)
+
+    def check(self, threshold: int = 1) -> None:
+        """Every invariant of the table; AssertionError describing the first that fails."""
+        n = self.rows
+        state = f"RowTable(bits={self.bits}, rows={n}, next_id={self.next_id}, removed={self.removed_count})"
+        assert self.words.shape[0] >= n and self.weights.shape[0] >= n and self.removed.shape[0] >= n, state
+        words = self.words[:n]
+        assert np.array_equal(kernels.row_weights(words), self.weights[:n].astype(np.int64)), f"weights stale: {state}"
+        tail = self.bits % 64
+        if tail and n:
+            assert not np.any(words[:, -1] >> np.uint64(tail)), f"padding bits set: {state}"
+        assert int(self.removed[:n].sum()) == self.removed_count, f"removed count: {state}"
+        if n:
+            assert self.weights[:n].min() >= threshold, f"a stored code is lighter than threshold: {state}"
+        if self.row_ids is not None:
+            ids = self.row_ids[:n]
+            assert np.all(np.diff(ids) > 0), f"row ids not ascending: {state}"
+            assert n == 0 or (ids[0] >= 0 and ids[-1] < self.next_id), state
+        else:
+            assert n == self.next_id, f"identity row map but rows != next_id: {state}"
+
+
+class UsageCounts:
+    """Per-bit set counts and the weight histogram of the live codes, kept current by every change.
+
+    A loaded store starts *uncounted* (counting is O(N)) and counts once,
+    on first need; after that every change adds or subtracts its share.
+    """
+
+    def __init__(self, bits: int, counted: bool = True):
+        self.bits = bits
+        self.usage = np.zeros(bits, dtype=np.int64) if counted else None
+        self.weight_hist = np.zeros(bits + 1, dtype=np.int64) if counted else None
+
+    @property
+    def counted(self) -> bool:
+        return self.usage is not None
+
+    def count(self, table: RowTable) -> None:
+        self.weight_hist = table.weight_hist()
+        self.usage = table.bit_usage()
+
+    def added(self, usage: np.ndarray, weight_hist: np.ndarray) -> None:
+        if self.counted:
+            self.usage += usage
+            self.weight_hist += weight_hist
+
+    def removed(self, usage: np.ndarray, weight_hist: np.ndarray) -> None:
+        if self.counted:
+            self.usage -= usage
+            self.weight_hist -= weight_hist
+
+    def check(self, table: RowTable) -> None:
+        if not self.counted:
+            return
+        live = table.live_rows()
+        _, bits = table.indices(live)
+        assert np.array_equal(self.usage, np.bincount(bits, minlength=self.bits)), "bit usage stale"
+        assert np.array_equal(self.weight_hist, table.weight_hist()), "weight histogram stale"
+
+
+def _grown(array: np.ndarray, room: int, used: int) -> np.ndarray:
+    out = np.zeros((room,) + array.shape[1:], dtype=array.dtype)
+    out[:used] = array[:used]
+    return out
