@@ -114,10 +114,10 @@ def _validated_indices(flat, indptr: np.ndarray, bits: int) -> np.ndarray:
 
 
 class Codes:
-    """A batch of binary codes of one width, packed into ``uint64`` words.
+    """A batch of binary codes of one width, as packed words or as sorted set-bit indices.
 
     Build one with a ``from_*`` constructor; the constructor itself takes
-    already-canonical arrays and checks their shapes and padding.
+    already-canonical packed words and checks their shapes and padding.
 
     Parameters
     ----------
@@ -128,29 +128,64 @@ class Codes:
 
     Notes
     -----
-    Memory is ``8 * ceil(bits / 64) + 8`` bytes per code. Indexing with an
-    integer returns that code's set-bit indices; a slice, an integer array
-    or a boolean mask returns a new ``Codes``.
+    A batch keeps whichever form is smaller: up to :data:`PACKED_MAX_BITS`
+    bits it is always packed (``8 * ceil(bits / 64)`` bytes per code, the
+    form the narrow kernels read); wider, it is held as CSR — row pointers
+    plus each code's set-bit indices, ascending, in the narrowest unsigned
+    type that holds ``bits - 1`` — unless its rows are so dense that packed
+    is smaller. Memory of a wide sparse batch is then ``8 + weight ×
+    (1, 2, 4 or 8)`` bytes per code, whatever the width (:attr:`nbytes`).
+    The other form is made on request (:meth:`to_csr`, :attr:`words`);
+    :meth:`to_dense` and :meth:`to_packed` refuse a result larger than
+    :data:`MAX_EXPANDED_BYTES`. Indexing with an integer returns that
+    code's set-bit indices; a slice, an integer array or a boolean mask
+    returns a new ``Codes``.
 
     Examples
     --------
     >>> codes = Codes.from_indices([[0, 5, 64], [3]], bits=100)
-    >>> len(codes), codes.bits, codes.weights.tolist()
-    (2, 100, [3, 1])
+    >>> len(codes), codes.bits, codes.weights.tolist(), codes.layout
+    (2, 100, [3, 1], 'packed')
     >>> codes[0].tolist()
     [0, 5, 64]
     >>> codes.to_dense().sum(axis=1).tolist()
     [3, 1]
+    >>> wide = Codes.from_indices([[7, 2**20 - 1]], bits=2**20)
+    >>> wide.layout, wide.nbytes
+    ('sparse', 32)
     """
 
-    __slots__ = ("_words", "_weights", "_bits")
+    __slots__ = ("_words", "_indptr", "_indices", "_weights", "_bits")
 
     @classmethod
     def _wrap(cls, words, bits) -> "Codes":
-        """Adopt a fresh, canonical uint64 array without copying or checking."""
+        """Adopt a fresh, canonical uint64 array without copying or checking (kept packed)."""
         self = cls.__new__(cls)
-        self._words = words
+        self._words, self._indptr, self._indices = words, None, None
         self._weights = _kernels.row_weights(words)
+        self._bits = bits
+        return self
+
+    @classmethod
+    def _adopt_packed(cls, words, bits) -> "Codes":
+        """Fresh canonical packed rows, kept in the smaller form."""
+        codes = cls._wrap(words, bits)
+        if _sparse_is_smaller(bits, len(codes), int(codes.weights.sum())):
+            return cls._adopt_csr(*codes.to_csr(), bits)
+        return codes
+
+    @classmethod
+    def _adopt_csr(cls, indptr, indices, bits) -> "Codes":
+        """Fresh canonical CSR (int64 pointers, indices sorted per row, checked), kept in the smaller form."""
+        rows = indptr.shape[0] - 1
+        if not _sparse_is_smaller(bits, rows, int(indices.shape[0])):
+            words, _, _ = _kernels.pack_indices(indptr, indices, _words_for(bits))
+            return cls._wrap(words, bits)
+        self = cls.__new__(cls)
+        self._words = None
+        self._indptr = indptr.astype(np.int64, copy=False)
+        self._indices = indices.astype(index_dtype(bits), copy=False)
+        self._weights = np.diff(self._indptr)
         self._bits = bits
         return self
 
@@ -170,19 +205,28 @@ class Codes:
             bad = np.flatnonzero(pad)
             if bad.size:
                 raise ValueError(f"row {int(bad[0])}: padding bits above bits={bits} are set")
-        self._words = words
+        self._words, self._indptr, self._indices = words, None, None
         self._weights = _kernels.row_weights(words)
         self._bits = bits
+        if _sparse_is_smaller(bits, words.shape[0], int(self._weights.sum())):
+            self._indptr, indices = _kernels.unpack_indices(words, self._weights)
+            self._indices = indices.astype(index_dtype(bits))
+            self._words = None
 
     # -- constructors -----------------------------------------------------
 
     @classmethod
     def _from_csr(cls, indptr, flat, bits) -> "Codes":
         flat = _validated_indices(flat, indptr, bits)
-        words, dup_row, dup_value = _kernels.pack_indices(indptr, flat, _words_for(bits))
+        if not _sparse_is_smaller(bits, indptr.shape[0] - 1, flat.shape[0]):
+            words, dup_row, dup_value = _kernels.pack_indices(indptr, flat, _words_for(bits))
+            if dup_row >= 0:
+                raise ValueError(f"row {int(dup_row)}: duplicate bit index {int(dup_value)}")
+            return cls._wrap(words, bits)
+        ordered, dup_row, dup_value = _kernels.sort_rows_checked(indptr, flat)
         if dup_row >= 0:
             raise ValueError(f"row {int(dup_row)}: duplicate bit index {int(dup_value)}")
-        return cls._wrap(words, bits)
+        return cls._adopt_csr(indptr, ordered, bits)
 
     @classmethod
     def from_indices(cls, rows, bits) -> "Codes":
@@ -244,6 +288,11 @@ class Codes:
             raise ValueError(f"from_dense takes a 2-D bool array (rows, bits), got shape {array.shape}")
         rows, bits = array.shape
         bits = _check_bits(bits)
+        if _sparse_is_smaller(bits, rows, int(np.count_nonzero(array))):
+            r, c = np.nonzero(array)  # row-major: indices ascend within each row
+            indptr = np.zeros(rows + 1, dtype=np.int64)
+            np.cumsum(np.bincount(r, minlength=rows), out=indptr[1:])
+            return cls._adopt_csr(indptr, c.astype(np.int64), bits)
         packed = np.packbits(array, axis=1, bitorder="little")
         return cls._wrap(_bytes_to_words(packed, rows, bits), bits)
 
@@ -323,14 +372,15 @@ class Codes:
         tail = bits % 8
         if tail:
             data[:, -1] &= np.uint8((1 << tail) - 1)  # bitarray pads with zeros; make sure
-        return cls._wrap(_bytes_to_words(data, len(rows), bits), bits)
+        return cls._adopt_packed(_bytes_to_words(data, len(rows), bits), bits)
 
     @classmethod
     def from_scipy(cls, matrix) -> "Codes":
         """Codes from a scipy.sparse matrix or array of shape (rows, bits).
 
         Stored entries must be 0 or 1 (explicit zeros are dropped); a
-        repeated (row, column) entry is an error.
+        repeated (row, column) entry is an error. A wide matrix is taken in
+        as indices, never packed (memory follows its entries).
 
         Examples
         --------
@@ -345,30 +395,37 @@ class Codes:
         if matrix.ndim != 2:
             raise ValueError(f"from_scipy takes a 2-D sparse matrix, got shape {matrix.shape}")
         indptr, flat, bits = _binary_csr(sp.csr_matrix(matrix, copy=True))
-        words, dup_row, dup_value = _kernels.pack_indices(indptr, flat, _words_for(bits))
+        ordered, dup_row, dup_value = _kernels.sort_rows_checked(indptr, flat)
         if dup_row >= 0:
             raise ValueError(f"row {int(dup_row)}: duplicate entry at bit index {int(dup_value)}")
-        return cls._wrap(words, bits)
+        return cls._adopt_csr(indptr, ordered, bits)
 
     @classmethod
     def random(cls, count, bits, weight, seed=0) -> "Codes":
         """``count`` random codes with exactly ``weight`` distinct set bits each.
 
-        Uniform over all such codes (Floyd's sampling, kernel
-        ``random_indices``); reproducible from ``seed``. For tests, measurements and
-        benchmarks. O(count * weight).
+        Uniform over all such codes (Floyd's sampling, kernels
+        ``random_words`` and ``random_indices``, which draw the same codes);
+        reproducible from ``seed``. For tests, measurements and benchmarks.
+        O(count * weight).
 
         Examples
         --------
         >>> c = Codes.random(3, bits=100, weight=5, seed=1)
         >>> c.weights.tolist()
         [5, 5, 5]
+        >>> Codes.random(3, bits=2**20, weight=5, seed=1)[0].tolist() == Codes.random(3, 2**20, 5, seed=1)[0].tolist()
+        True
         """
         bits = _check_bits(bits)
         count = validation.integer("count", count, minimum=0, what="Codes.random")
         weight = validation.integer("weight", weight, minimum=0, maximum=bits, what="Codes.random")
         seed = validation.integer("seed", seed, minimum=0, maximum=validation.SEED_LIMIT - 1, what="Codes.random")
-        return cls._wrap(_kernels.random_words(count, bits, int(weight), np.uint64(seed)), bits)
+        if _sparse_is_smaller(bits, count, count * weight):
+            flat = _kernels.random_indices(count, bits, weight, np.uint64(seed))
+            return cls._adopt_csr(np.arange(0, count * weight + 1, max(weight, 1), dtype=np.int64)[: count + 1]
+                                  if weight else np.zeros(count + 1, dtype=np.int64), flat, bits)
+        return cls._wrap(_kernels.random_words(count, bits, weight, np.uint64(seed)), bits)
 
     # -- exits --------------------------------------------------------------
 
@@ -385,9 +442,22 @@ class Codes:
         return self._bits
 
     @property
+    def layout(self) -> str:
+        """``"packed"`` or ``"sparse"``: the form this batch is held in."""
+        return "sparse" if self._indices is not None else "packed"
+
+    @property
+    def nbytes(self) -> int:
+        """Bytes this batch holds (its form, the weights and, once made, the other form)."""
+        total = self._weights.nbytes
+        for part in (self._words, self._indptr, self._indices):
+            total += 0 if part is None else part.nbytes
+        return total
+
+    @property
     def words(self) -> np.ndarray:
-        """The packed rows (read-only view), shape (rows, ceil(bits / 64))."""
-        view = self._words.view()
+        """The packed rows (read-only view), shape (rows, ceil(bits / 64)); made once for a sparse batch."""
+        view = packed_words(self).view()
         view.flags.writeable = False
         return view
 
@@ -406,6 +476,8 @@ class Codes:
         >>> [a.tolist() for a in Codes.from_indices([[3, 1], [], [7]], bits=8).to_csr()]
         [[0, 2, 2, 3], [1, 3, 7]]
         """
+        if self._indices is not None:
+            return self._indptr.copy(), self._indices.astype(np.int64)
         return _kernels.unpack_indices(self._words, self._weights)
 
     def to_indices(self) -> list[np.ndarray]:
@@ -421,25 +493,46 @@ class Codes:
         indptr, flat = self.to_csr()
         return np.split(flat, indptr[1:-1])
 
+    def _packed_words(self) -> np.ndarray:
+        if self._words is None:
+            self._refuse_expanded("packing", len(self) * 8 * _words_for(self._bits))
+            words, _, _ = _kernels.pack_indices(self._indptr, self._indices.astype(np.int64), _words_for(self._bits))
+            self._words = words
+        return self._words
+
     def _le_bytes(self) -> np.ndarray:
         """The packed rows as little-endian bytes, shape (rows, 8 * words)."""
-        return self._words.astype("<u8", copy=False).view(np.uint8).reshape(len(self), 8 * self._words.shape[1])
+        words = packed_words(self)
+        return words.astype("<u8", copy=False).view(np.uint8).reshape(len(self), 8 * words.shape[1])
+
+    def _refuse_expanded(self, what: str, nbytes: int) -> None:
+        if nbytes > MAX_EXPANDED_BYTES:
+            raise ValueError(
+                f"{what} of {len(self):,} codes of {self._bits:,} bits would take {nbytes:,} bytes, more than "
+                f"MAX_EXPANDED_BYTES={MAX_EXPANDED_BYTES:,}; use to_csr() or to_scipy(), or convert a slice at a time"
+            )
 
     def to_dense(self) -> np.ndarray:
-        """A (rows, bits) bool array.
+        """A (rows, bits) bool array; ``ValueError`` if it would exceed :data:`MAX_EXPANDED_BYTES`.
 
         Examples
         --------
         >>> Codes.from_indices([[0, 2]], bits=4).to_dense().tolist()
         [[True, False, True, False]]
         """
+        self._refuse_expanded("to_dense", len(self) * self._bits)
+        if self._indices is not None:
+            out = np.zeros((len(self), self._bits), dtype=bool)
+            out[np.repeat(np.arange(len(self)), self._weights), self._indices] = True
+            return out
         as_bytes = self._le_bytes()
         return np.unpackbits(as_bytes, axis=1, count=self._bits, bitorder="little").astype(bool)
 
     def to_packed(self, bitorder="little", dtype=np.uint8) -> np.ndarray:
         """Packed rows as ``uint8`` bytes (default) or ``uint64`` words.
 
-        The inverse of :meth:`from_packed` for the same ``bitorder``.
+        The inverse of :meth:`from_packed` for the same ``bitorder``;
+        ``ValueError`` if the result would exceed :data:`MAX_EXPANDED_BYTES`.
 
         Examples
         --------
@@ -450,16 +543,17 @@ class Codes:
         if bitorder not in ("little", "big"):
             raise ValueError(f"bitorder={bitorder!r} must be 'little' or 'big'")
         dtype = np.dtype(dtype)
+        if dtype not in (np.uint64, np.uint8):
+            raise TypeError(f"to_packed dtype must be uint8 or uint64, got {dtype}")
+        self._refuse_expanded("to_packed", len(self) * 8 * _words_for(self._bits))
         if dtype == np.uint64:
             if bitorder == "little":
-                return self._words.copy()
+                return packed_words(self).copy()
             as_bytes = self._le_bytes()
             return np.ascontiguousarray(_REVERSE_BYTE[as_bytes]).view(">u8").astype(np.uint64)
-        if dtype == np.uint8:
-            as_bytes = self._le_bytes()
-            as_bytes = as_bytes[:, : (self._bits + 7) // 8]
-            return np.ascontiguousarray(as_bytes if bitorder == "little" else _REVERSE_BYTE[as_bytes])
-        raise TypeError(f"to_packed dtype must be uint8 or uint64, got {dtype}")
+        as_bytes = self._le_bytes()
+        as_bytes = as_bytes[:, : (self._bits + 7) // 8]
+        return np.ascontiguousarray(as_bytes if bitorder == "little" else _REVERSE_BYTE[as_bytes])
 
     def to_bitarrays(self, endian="big") -> list:
         """Each code as a ``bitarray`` of length ``bits``.
@@ -498,21 +592,35 @@ class Codes:
     # -- container protocol --------------------------------------------------
 
     def __len__(self) -> int:
-        return self._words.shape[0]
+        return self._weights.shape[0]
 
     def __getitem__(self, item):
+        n = len(self)
         if isinstance(item, (Integral, np.integer)) and not isinstance(item, (bool, np.bool_)):
-            n = len(self)
             i = int(item)
             if not -n <= i < n:
                 raise IndexError(f"code index {i} out of range for {n} codes")
             i %= n
+            if self._indices is not None:
+                return self._indices[self._indptr[i] : self._indptr[i + 1]].astype(np.int64)
             return _kernels.unpack_indices(self._words[i : i + 1], self._weights[i : i + 1])[1]
-        picked = self._words[item]
-        if picked.ndim != 2:
+        if self._indices is None:
+            picked = self._words[item]
+            if picked.ndim != 2:
+                raise IndexError(f"unsupported index {item!r}")
+            # Codes never change after construction, so a view can be shared
+            return adopt_words(np.ascontiguousarray(picked), self._bits)
+        try:
+            rows = np.arange(n)[item]
+        except (IndexError, TypeError, ValueError) as exc:
+            raise IndexError(f"unsupported index {item!r}: {exc}") from None
+        if rows.ndim != 1:
             raise IndexError(f"unsupported index {item!r}")
-        # Codes never change after construction, so a view can be shared
-        return adopt_words(np.ascontiguousarray(picked), self._bits)
+        lengths = self._weights[rows]
+        indptr = np.zeros(rows.shape[0] + 1, dtype=np.int64)
+        np.cumsum(lengths, out=indptr[1:])
+        gather = np.repeat(self._indptr[rows] - indptr[:-1], lengths) + np.arange(indptr[-1])
+        return self._adopt_csr(indptr, self._indices[gather], self._bits)
 
     def __iter__(self):
         return iter(self.to_indices())
@@ -520,7 +628,11 @@ class Codes:
     def __eq__(self, other):
         if not isinstance(other, Codes):
             return NotImplemented
-        return self._bits == other.bits and np.array_equal(self._words, packed_words(other))
+        if self._bits != other.bits or len(self) != len(other) or not np.array_equal(self._weights, other.weights):
+            return False
+        if self.layout == other.layout == "packed":
+            return np.array_equal(self._words, packed_words(other))
+        return all(np.array_equal(a, b) for a, b in zip(self.to_csr(), other.to_csr()))
 
     __hash__ = None
 
@@ -530,7 +642,7 @@ class Codes:
             return f"Codes(rows=0, bits={self._bits})"
         w = self._weights
         return (
-            f"Codes(rows={n}, bits={self._bits}, set bits min/mean/max "
+            f"Codes(rows={n}, bits={self._bits}, {self.layout}, set bits min/mean/max "
             f"{int(w.min())}/{float(w.mean()):.1f}/{int(w.max())})"
         )
 
@@ -551,7 +663,43 @@ class Codes:
         for k, b in enumerate(batches):
             if b.bits != bits:
                 raise ValueError(f"batch {k} has bits={b.bits}, expected {bits} like batch 0")
-        return adopt_words(np.concatenate([packed_words(b) for b in batches]), bits)
+        if all(b.layout == "packed" for b in batches):
+            return adopt_words(np.concatenate([packed_words(b) for b in batches]), bits)
+        parts = [b.to_csr() for b in batches]
+        counts = np.concatenate([np.diff(ip) for ip, _ in parts])
+        indptr = np.zeros(counts.shape[0] + 1, dtype=np.int64)
+        np.cumsum(counts, out=indptr[1:])
+        return adopt_csr(indptr, np.concatenate([ind for _, ind in parts]), bits)
+
+
+#: Widths up to this are always held packed (a row is at most 512 bytes and
+#: the packed kernels read it in a few cache lines).
+PACKED_MAX_BITS = 4096
+#: ``to_dense`` and ``to_packed`` refuse results larger than this (1 GiB).
+MAX_EXPANDED_BYTES = 1 << 30
+
+
+def index_dtype(bits: int):
+    """The narrowest unsigned integer type that holds every index below ``bits``.
+
+    Examples
+    --------
+    >>> [index_dtype(b).__name__ for b in (256, 257, 2**16 + 1, 2**32 + 1)]
+    ['uint8', 'uint16', 'uint32', 'uint64']
+    """
+    for dtype in (np.uint8, np.uint16, np.uint32):
+        if bits - 1 <= np.iinfo(dtype).max:
+            return dtype
+    return np.uint64
+
+
+def _sparse_is_smaller(bits: int, rows: int, nnz: int) -> bool:
+    """Whether a batch is held as indices: wide, and smaller that way than packed."""
+    if bits <= PACKED_MAX_BITS:
+        return False
+    packed = rows * 8 * _words_for(bits)
+    sparse = 8 * (rows + 1) + nnz * np.dtype(index_dtype(bits)).itemsize
+    return sparse < packed
 
 
 # The two friends below are how the rest of the package reaches a batch's
@@ -560,13 +708,22 @@ class Codes:
 
 
 def packed_words(codes: Codes) -> np.ndarray:
-    """The batch's packed rows themselves (not a read-only view), for kernels; never write to them."""
-    return codes._words
+    """The batch's packed rows themselves (not a read-only view), for kernels; never write to them.
+
+    A sparse batch packs once, on the first call, and keeps them; ``ValueError``
+    if they would exceed :data:`MAX_EXPANDED_BYTES`.
+    """
+    return codes._packed_words()
 
 
 def adopt_words(words: np.ndarray, bits: int) -> Codes:
     """A Codes over a fresh, canonical uint64 array made by the caller, without a copy or a check."""
     return Codes._wrap(words, bits)
+
+
+def adopt_csr(indptr: np.ndarray, indices: np.ndarray, bits: int) -> Codes:
+    """A Codes over fresh CSR arrays (int64 pointers, in-range indices sorted and distinct per row), unchecked."""
+    return Codes._adopt_csr(indptr, indices, bits)
 
 
 def _row_array(row, r: int) -> np.ndarray:
@@ -668,6 +825,12 @@ def _plain_ints_code(obj, bits: int):
             return None
     else:
         return None
+    if bits > PACKED_MAX_BITS:  # wide: never a width-sized row for one query
+        if arr.size and (arr.min() < 0 or arr.max() >= bits):
+            return None
+        indptr = np.array([0, arr.size], dtype=np.int64)
+        ordered, dup_row, _ = _kernels.sort_rows_checked(indptr, arr)
+        return None if dup_row >= 0 else adopt_csr(indptr, ordered, bits)
     words, ok = _kernels.pack_one_checked(arr, bits, _words_for(bits))
     return adopt_words(words, bits) if ok else None
 

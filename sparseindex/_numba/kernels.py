@@ -246,6 +246,73 @@ def random_words(rows, bits, weight, seed):
     return out
 
 
+@kernel
+def sort_rows_checked(indptr, indices):
+    """Each CSR row's indices sorted ascending (a new int64 array).
+
+    Returns ``(sorted, dup_row, dup_value)``: ``dup_row`` is the first row
+    holding one index twice, or -1.
+    """
+    rows = indptr.shape[0] - 1
+    out = indices.astype(np.int64)
+    for r in range(rows):
+        a, b = indptr[r], indptr[r + 1]
+        if b - a > 1:
+            out[a:b] = np.sort(out[a:b])
+            for p in range(a + 1, b):
+                if out[p] == out[p - 1]:
+                    return out, r, out[p]
+    return out, -1, -1
+
+
+@kernel
+def random_indices(rows, bits, weight, seed):
+    """The codes of :func:`random_words` with the same arguments, as sorted CSR indices (int64, ``weight`` per row).
+
+    The same Floyd draws; set membership is an open-addressing table of
+    twice the weight instead of the packed row, so memory follows the set
+    bits, not the width.
+    """
+    out = np.empty(rows * weight, dtype=np.int64)
+    size = 1
+    while size < 2 * weight:
+        size *= 2
+    table = np.zeros(max(size, 1), dtype=np.int64)  # stores index + 1; 0 is empty
+    mask = size - 1
+    for r in range(rows):
+        table[:] = 0
+        state = _detector_state(seed, r, 0)
+        n = 0
+        for j in range(bits - weight, bits):
+            state, x = _rng_next(state)
+            v = np.int64(x % np.uint64(j + 1))
+            if _table_has(table, mask, v):
+                v = j
+            _table_put(table, mask, v)
+            out[r * weight + n] = v
+            n += 1
+        out[r * weight : (r + 1) * weight] = np.sort(out[r * weight : (r + 1) * weight])
+    return out
+
+
+@inline_kernel
+def _table_has(table, mask, v):
+    h = np.int64(mix64(np.uint64(v)) & np.uint64(mask))
+    while table[h] != 0:
+        if table[h] == v + 1:
+            return True
+        h = (h + 1) & mask
+    return False
+
+
+@inline_kernel
+def _table_put(table, mask, v):
+    h = np.int64(mix64(np.uint64(v)) & np.uint64(mask))
+    while table[h] != 0:
+        h = (h + 1) & mask
+    table[h] = v + 1
+
+
 # ---------------------------------------------------------------------------
 # detector sampling and postings
 # ---------------------------------------------------------------------------
