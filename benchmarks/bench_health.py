@@ -37,7 +37,7 @@ else:  # imported as benchmarks.bench_health
 
 from sparseindex import Codes, Store  # noqa: E402
 from sparseindex.store.bank import DetectorBank  # noqa: E402
-from sparseindex.codes import packed_words  # noqa: E402
+from sparseindex.codes import row_table  # noqa: E402
 
 
 def parse_args(argv):
@@ -63,7 +63,7 @@ def run(n, measured_queries, repeats):
 
     def fused(count):
         bank = DetectorBank(*bank_args)
-        return lambda: bank.prepare_append(packed_words(codes), ids, count_usage=count)
+        return lambda: bank.prepare_append(row_table(codes), ids, codes.weights, count_usage=count)
 
     fused(True)()  # compile both paths
     with_usage, without_usage = [], []

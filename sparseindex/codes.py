@@ -493,6 +493,11 @@ class Codes:
         indptr, flat = self.to_csr()
         return np.split(flat, indptr[1:-1])
 
+    def _row_table(self) -> tuple:
+        if self._indices is not None:
+            return index_table(self._indptr, self._indices, self._bits)
+        return packed_table(self._words)
+
     def _packed_words(self) -> np.ndarray:
         if self._words is None:
             self._refuse_expanded("packing", len(self) * 8 * _words_for(self._bits))
@@ -714,6 +719,27 @@ def packed_words(codes: Codes) -> np.ndarray:
     if they would exceed :data:`MAX_EXPANDED_BYTES`.
     """
     return codes._packed_words()
+
+
+def row_table(codes: Codes) -> tuple:
+    """The batch as a kernel row table ``(words, indptr, indices)`` (see ``_numba.kernels``), in its own layout."""
+    return codes._row_table()
+
+
+#: The empty parts of a row table: no pointers (a packed table), or no
+#: packed rows (an index table).
+NO_POINTERS = np.zeros(0, dtype=np.int64)
+NO_INDICES = np.zeros(0, dtype=np.uint16)
+
+
+def packed_table(words: np.ndarray) -> tuple:
+    """A kernel row table over packed rows."""
+    return (words, NO_POINTERS, NO_INDICES)
+
+
+def index_table(indptr: np.ndarray, indices: np.ndarray, bits: int) -> tuple:
+    """A kernel row table over sorted index rows (int64 pointers, ``rows + 1`` of them)."""
+    return (np.zeros((0, _words_for(bits)), dtype=np.uint64), indptr, indices)
 
 
 def adopt_words(words: np.ndarray, bits: int) -> Codes:

@@ -1,4 +1,4 @@
-"""One store contract, checked on every store: ``Store`` and a 2-shard ``ShardedStore``.
+"""One store contract, checked on every store: ``Store`` (rows packed, and rows as indices) and a 2-shard ``ShardedStore``.
 
 Each test runs against both and compares with the set-based reference in
 ``tests/naive.py`` (hits, overlaps, nearest, the find-or-add rule), so a
@@ -17,7 +17,13 @@ from sparseindex import Codes, Store
 from tests import naive
 
 BITS, WEIGHT, THRESHOLD = 200, 12, 5
-KINDS = ["store", "sharded"]
+KINDS = ["store", "sparse rows", "sharded"]
+
+
+class SparseRowsStore(Store):
+    """A Store that keeps its rows as sorted indices even at this narrow width (the layout wide stores use)."""
+
+    _row_layout = "sparse"
 
 
 @pytest.fixture(scope="module")
@@ -38,6 +44,9 @@ def make(request):
     def new(**kwargs):
         if request.param == "store":
             store = Store(BITS, **kwargs)
+        elif request.param == "sparse rows":
+            store = SparseRowsStore(BITS, **kwargs)
+            assert store.row_layout == "sparse"
         else:
             from sparseindex.cluster import ShardedStore
 
@@ -67,6 +76,8 @@ def queries_for(rng, codes, n=40):
 
 
 def assert_answers(store, ref, queries, min_overlap=0):
+    if isinstance(store, Store):
+        store._check(deep=True)  # the invariants of whichever row layout it keeps
     batch = store.query_many(queries, min_overlap=min_overlap)
     for q, many in zip(queries, batch):
         want = ref.query(q, min_overlap)

@@ -90,7 +90,7 @@ def test_golden_bytes_of_the_current_version(tmp_path):
 
 
 def test_a_newer_major_version_is_refused_with_both_versions(tmp_path):
-    data = bytearray((FIXTURES / "store_v1_1.sidx").read_bytes())
+    data = bytearray((FIXTURES / f"store_v{_persist.FORMAT_MAJOR}_{_persist.FORMAT_MINOR}.sidx").read_bytes())
     data[8:10] = struct.pack("<H", _persist.FORMAT_MAJOR + 1)
     # reseal the preamble so that only the version is wrong
     import zlib
@@ -134,3 +134,37 @@ def test_every_sharded_version_loads_and_answers_as_it_did(folder):
     finally:
         client.close()
         cluster.close()
+
+
+WIDE_FIXTURES = sorted(FIXTURES.glob("wide_store_v*.sidx"))
+
+
+@pytest.mark.parametrize("path", WIDE_FIXTURES, ids=lambda p: p.stem)
+@pytest.mark.parametrize("mmap", [False, True])
+def test_every_wide_fixture_loads_with_index_rows_and_answers_as_it_did(path, mmap):
+    from tests.fixtures.write_fixtures import WIDE_BITS, wide_store_fixture
+
+    expected = json.loads(path.with_suffix(".json").read_text())
+    store = Store.load(path, mmap=mmap)
+    store._check()
+    assert store.row_layout == "sparse" and store.bits == WIDE_BITS
+    assert store.ids().tolist() == expected["ids"]
+    codes = Codes.from_indices(expected["codes"], bits=WIDE_BITS)
+    assert answers_of(store, codes) == expected["answers"]
+    fresh, _ = wide_store_fixture(Store, Codes)
+    assert answers_of(fresh, codes) == expected["answers"]
+
+
+def test_golden_bytes_of_the_current_wide_version(tmp_path):
+    from tests.fixtures.write_fixtures import wide_store_fixture
+
+    current = FIXTURES / f"wide_store_v{_persist.FORMAT_MAJOR}_{_persist.FORMAT_MINOR}.sidx"
+    store, _ = wide_store_fixture(Store, Codes)
+    store.save(tmp_path / "today.sidx")
+    golden, today = current.read_bytes(), (tmp_path / "today.sidx").read_bytes()
+    hg, ht = header_of(golden), header_of(today)
+    hg.pop("written_by"), ht.pop("written_by")
+    assert hg == ht and hg["params"]["row_layout"] == "sparse"
+    assert [s["name"] for s in hg["sections"]][:2] == ["row_indptr", "row_indices"]
+    sections = lambda data: data[32 + struct.unpack("<I", data[12:16])[0]:].lstrip(b"\0")  # noqa: E731
+    assert sections(golden) == sections(today)

@@ -32,8 +32,21 @@ def _valid_file() -> bytes:
     return _persist.dumps(store._state())
 
 
+class TinyBlockIndexRowsStore(TinyBlockStore):
+    _row_layout = "sparse"  # rows as sorted indices, the layout of wide stores
+
+
+def _valid_index_rows_file() -> bytes:
+    store = TinyBlockIndexRowsStore(64, threshold=2, sample_size=3, detectors=2, seed=8)
+    store.add(Codes.random(12, 64, 6, seed=8))
+    store.remove([4])
+    return _persist.dumps(store._state())
+
+
 VALID = _valid_file()
 HEADER = header_of(VALID)
+VALID_INDEX_ROWS = _valid_index_rows_file()
+HEADER_INDEX_ROWS = header_of(VALID_INDEX_ROWS)
 DIRECTORY = tempfile.mkdtemp(prefix="sparseindex-fuzz-")
 PATH = os.path.join(DIRECTORY, "fuzz.sidx")
 INTERESTING = [-1, 0, 1, 2, 3, 5, 7, 63, 64, 65, 255, 256, 65535, 65536, 2**31 - 1, 2**31, 2**32, 2**62, 2**63,
@@ -181,8 +194,25 @@ SECTIONS = [s["name"] for s in HEADER["sections"]]
     st.booleans(),
 )
 def test_resealed_array_mutations(name, changes, mmap):
+    resealed_array_mutation(VALID, HEADER, name, changes, mmap)
+
+
+@settings(max_examples=1500)
+@given(
+    st.sampled_from(["row_indptr", "row_indices"]),
+    st.lists(st.tuples(st.integers(0, 10_000), st.integers(-(2**63), 2**64 - 1) | st.sampled_from(INTERESTING[:21])),
+             min_size=1, max_size=4),
+    st.booleans(),
+)
+def test_resealed_index_row_mutations(name, changes, mmap):
+    resealed_array_mutation(VALID_INDEX_ROWS, HEADER_INDEX_ROWS, name, changes, mmap)
+
+
+def resealed_array_mutation(valid, valid_header, name, changes, mmap):
+    """Change entries of section ``name``, reseal every CRC: the load refuses, or loads and serves safely."""
+    HEADER = valid_header  # noqa: N806
     entry = next(s for s in HEADER["sections"] if s["name"] == name)
-    raw = bytearray(VALID)
+    raw = bytearray(valid)
     count = int(np.prod(entry["shape"]))
     if count == 0:
         return

@@ -142,6 +142,66 @@ def _row_overlap(a, b):
     return total
 
 
+# Stored rows reach the kernels as a *row table* ``(words, indptr, indices)``:
+# packed rows in ``words`` (then ``indptr`` is empty), or each row's sorted
+# set-bit indices in ``indices[indptr[r]:indptr[r + 1]]`` (then ``words`` has no
+# rows). The three helpers below are the only code that tells them apart.
+
+
+@inline_kernel
+def _stored_overlap(table, r, q_words):
+    """Exact overlap of stored row ``r`` with a packed query."""
+    words, indptr, indices = table
+    if indptr.shape[0] == 0:
+        return _row_overlap(words[r], q_words)
+    total = 0
+    for p in range(indptr[r], indptr[r + 1]):
+        i = np.int64(indices[p])
+        if (q_words[i >> 6] >> np.uint64(i & 63)) & np.uint64(1):
+            total += 1
+    return total
+
+
+@inline_kernel
+def _stored_bits(table, r, out):
+    """Set-bit indices of stored row ``r`` into ``out``; returns the count."""
+    words, indptr, indices = table
+    if indptr.shape[0] == 0:
+        return _row_bits(words, r, out)
+    a = indptr[r]
+    n = indptr[r + 1] - a
+    for t in range(n):
+        out[t] = np.int64(indices[a + t])
+    return n
+
+
+@inline_kernel
+def _stored_has(table, r, b):
+    """Whether stored row ``r`` sets bit ``b`` (a binary search in an index row)."""
+    words, indptr, indices = table
+    if indptr.shape[0] == 0:
+        return (words[r, b >> 6] >> np.uint64(b & 63)) & np.uint64(1) != np.uint64(0)
+    lo, hi = indptr[r], indptr[r + 1]
+    end = hi
+    while lo < hi:
+        mid = (lo + hi) // 2
+        if np.int64(indices[mid]) < b:
+            lo = mid + 1
+        else:
+            hi = mid
+    return lo < end and np.int64(indices[lo]) == b
+
+
+@inline_kernel
+def _stored_prefetch(table, r):
+    words, indptr, indices = table
+    if indptr.shape[0] == 0:
+        for w in range(0, words.shape[1], 8):  # one hint per cache line
+            prefetch(words[r], w)
+    else:
+        prefetch(indices, indptr[r])
+
+
 # ---------------------------------------------------------------------------
 # packing and unpacking
 # ---------------------------------------------------------------------------
@@ -266,6 +326,26 @@ def sort_rows_checked(indptr, indices):
 
 
 @kernel
+def check_index_rows(indptr, indices, bits):
+    """Check index rows read from a file (pointers already monotone and inside ``indices``).
+
+    Returns ``(problem, row)``: 0 when every row's indices are below
+    ``bits`` and strictly ascending, else 1 (an index out of range) or 2
+    (not strictly ascending) for the first bad row.
+    """
+    for r in range(indptr.shape[0] - 1):
+        prev = -1
+        for p in range(indptr[r], indptr[r + 1]):
+            v = np.int64(indices[p])
+            if v >= bits:
+                return 1, r
+            if v <= prev:
+                return 2, r
+            prev = v
+    return 0, 0
+
+
+@kernel
 def random_indices(rows, bits, weight, seed):
     """The codes of :func:`random_words` with the same arguments, as sorted CSR indices (int64, ``weight`` per row).
 
@@ -381,9 +461,9 @@ def sample_detectors(indptr, indices, code_ids, detectors, sample_size, seed):
 
 
 @kernel
-def _build_chunk(words, code_ids, r0, r1, first_row, detectors, sample_size, seed, bits, block_span, post, post_base,
+def _build_chunk(table, code_ids, r0, r1, first_row, detectors, sample_size, seed, bits, block_span, post, post_base,
                  block_indptr, block_lo, block_hi, block_base, usage, weight_hist, count_usage):
-    """Sample and index rows r0..r1-1 of ``words`` into preallocated tables.
+    """Sample and index rows r0..r1-1 of the row table ``table`` into preallocated tables.
 
     Block boundaries fall on multiples of ``block_span`` in the global
     detector id space, so a block never spans more than ``block_span``
@@ -410,7 +490,7 @@ def _build_chunk(words, code_ids, r0, r1, first_row, detectors, sample_size, see
     sample = np.empty(bits, dtype=np.int64)
     max_sample = 0
     for r in range(r0, r1):
-        w = _row_bits(words, r, row_bits)
+        w = _stored_bits(table, r, row_bits)
         if count_usage:
             for t in range(w):
                 usage[row_bits[t]] += 1
@@ -433,7 +513,7 @@ def _build_chunk(words, code_ids, r0, r1, first_row, detectors, sample_size, see
             pos += counts[k, b]
         block_indptr[block_base + k, bits] = pos
     for r in range(r0, r1):
-        w = _row_bits(words, r, row_bits)
+        w = _stored_bits(table, r, row_bits)
         take = w if (sample_size <= 0 or sample_size >= w) else sample_size
         for j in range(detectors):
             d = (first_row + r) * detectors + j
@@ -448,7 +528,7 @@ def _build_chunk(words, code_ids, r0, r1, first_row, detectors, sample_size, see
 
 
 @kernel
-def build_blocks_serial(words, code_ids, first_row, detectors, sample_size, seed, bits, block_span, chunk_rows,
+def build_blocks_serial(table, code_ids, first_row, detectors, sample_size, seed, bits, block_span, chunk_rows,
                         post, post_starts, block_indptr, block_lo, block_hi, block_starts, usage, weight_hist,
                         count_usage):
     """:func:`build_blocks_parallel` on the calling thread (one chunk: no parallel start-up cost)."""
@@ -456,7 +536,7 @@ def build_blocks_serial(words, code_ids, first_row, detectors, sample_size, seed
     biggest = np.zeros(n_chunks, dtype=np.int64)
     for c in range(n_chunks):
         biggest[c] = _build_chunk(
-            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, sample_size, seed, bits,
+            table, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, sample_size, seed, bits,
             block_span, post, post_starts[c], block_indptr, block_lo, block_hi, block_starts[c], usage[c],
             weight_hist[c], count_usage,
         )
@@ -464,7 +544,7 @@ def build_blocks_serial(words, code_ids, first_row, detectors, sample_size, seed
 
 
 @parallel_kernel
-def build_blocks_parallel(words, code_ids, first_row, detectors, sample_size, seed, bits, block_span, chunk_rows,
+def build_blocks_parallel(table, code_ids, first_row, detectors, sample_size, seed, bits, block_span, chunk_rows,
                           post, post_starts, block_indptr, block_lo, block_hi, block_starts, usage, weight_hist,
                           count_usage):
     """:func:`_build_chunk` over chunks of rows in parallel, into shared tables.
@@ -479,7 +559,7 @@ def build_blocks_parallel(words, code_ids, first_row, detectors, sample_size, se
     biggest = np.zeros(n_chunks, dtype=np.int64)
     for c in prange(n_chunks):
         biggest[c] = _build_chunk(
-            words, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, sample_size, seed, bits,
+            table, code_ids, chunk_rows[c], chunk_rows[c + 1], first_row, detectors, sample_size, seed, bits,
             block_span, post, post_starts[c], block_indptr, block_lo, block_hi, block_starts[c], usage[c],
             weight_hist[c], count_usage,
         )
@@ -653,21 +733,20 @@ def _fired_rows(fired, n_fired, detectors):
 
 
 @kernel
-def _verified(rows, removed, words, q_words, min_overlap):
+def _verified(rows, removed, table, q_words, min_overlap):
     """The live ``rows`` whose exact overlap with the query is >= min_overlap, with it."""
     out_rows = np.empty(rows.shape[0], dtype=np.int64)
     out_ov = np.empty(rows.shape[0], dtype=np.int64)
     # the rows are far apart in memory: hint them all first, so that their
     # misses overlap instead of being waited for one row at a time
     for i in range(rows.shape[0]):
-        for w in range(0, words.shape[1], 8):  # one hint per cache line
-            prefetch(words[rows[i]], w)
+        _stored_prefetch(table, rows[i])
     n = 0
     for i in range(rows.shape[0]):
         r = rows[i]
         if removed[r]:
             continue
-        ov = _row_overlap(words[r], q_words)
+        ov = _stored_overlap(table, r, q_words)
         if ov >= min_overlap:
             out_rows[n] = r
             out_ov[n] = ov
@@ -731,7 +810,7 @@ def _prefix_plan(q_bits, bit_postings, n_detectors, threshold, whole, verify_cos
 
 
 @kernel
-def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
+def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, table,
             min_overlap, fired, bit_postings, whole, verify_cost):
     """Rows hit by one query with their overlaps; a larger ``fired`` if needed.
 
@@ -745,12 +824,12 @@ def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, t
         fired = np.empty(2 * n_fired, dtype=np.int64)
         n_fired = _scan_count(scan_bits, post, block_indptr, block_lo, block_hi, counters, scan_threshold, fired)
     need = max(min_overlap, threshold) if whole else min_overlap
-    rows, overlaps = _verified(_fired_rows(fired, n_fired, detectors), removed, words, q_words, need)
+    rows, overlaps = _verified(_fired_rows(fired, n_fired, detectors), removed, table, q_words, need)
     return rows, overlaps, fired
 
 
 @kernel
-def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
+def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, table,
               min_overlap, bit_postings, whole, verify_cost):
     """One query: rows with a firing detector and overlap >= min_overlap.
 
@@ -761,7 +840,7 @@ def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters,
     """
     fired = np.empty(FIRED_ROOM, dtype=np.int64)
     rows, overlaps, fired = _answer(
-        q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, words,
+        q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, table,
         min_overlap, fired, bit_postings, whole, verify_cost,
     )
     return rows, overlaps
@@ -769,7 +848,7 @@ def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters,
 
 @parallel_kernel
 def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, chunk_counters, threshold, detectors,
-                       removed, words, min_overlap, bit_postings, whole, verify_cost):
+                       removed, table, min_overlap, bit_postings, whole, verify_cost):
     """:func:`query_one` with the blocks split into chunks scanned in parallel.
 
     ``chunk_counters`` holds one zeroed counter row (at least one block span
@@ -805,7 +884,7 @@ def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, 
             gathered[n] = fired[c * room + i]
             n += 1
     need = max(min_overlap, threshold) if whole else min_overlap
-    return _verified(_fired_rows(gathered, n, detectors), removed, words, q_words, need)
+    return _verified(_fired_rows(gathered, n, detectors), removed, table, q_words, need)
 
 
 @parallel_kernel
@@ -821,7 +900,7 @@ def query_batch(
     threshold,
     detectors,
     removed,
-    words,
+    table,
     min_overlap,
     chunk_lo,
     chunk_hi,
@@ -863,7 +942,7 @@ def query_batch(
                 threshold,
                 detectors,
                 removed,
-                words,
+                table,
                 min_overlap,
                 fired,
                 bit_postings,
@@ -883,20 +962,20 @@ def query_batch(
 
 
 @parallel_kernel
-def overlaps_with_all(q_words, words, n_rows):
-    """Exact overlap of one packed query with each of the first n_rows rows."""
+def overlaps_with_all(q_words, table, n_rows):
+    """Exact overlap of one packed query with each of the first n_rows rows of a row table."""
     out = np.empty(n_rows, dtype=np.int64)
     for r in prange(n_rows):
-        out[r] = _row_overlap(words[r], q_words)
+        out[r] = _stored_overlap(table, r, q_words)
     return out
 
 
 @kernel
-def overlaps_with_rows(q_words, words, rows):
-    """Exact overlap of one packed query with the given rows."""
+def overlaps_with_rows(q_words, table, rows):
+    """Exact overlap of one packed query with the given rows of a row table."""
     out = np.empty(rows.shape[0], dtype=np.int64)
     for t in range(rows.shape[0]):
-        out[t] = _row_overlap(words[rows[t]], q_words)
+        out[t] = _stored_overlap(table, rows[t], q_words)
     return out
 
 
@@ -957,7 +1036,7 @@ CHECK_TILE = 2048
 
 
 @inline_kernel
-def _check_block(post, block_indptr, lo, size, words, weights, detectors, sample_size, k, counts, cursor):
+def _check_block(post, block_indptr, lo, size, table, weights, detectors, sample_size, k, counts, cursor):
     """``check_postings`` for block ``k``: (problem, where), see there."""
     bits = block_indptr.shape[1] - 1
     for b in range(bits):
@@ -974,8 +1053,6 @@ def _check_block(post, block_indptr, lo, size, words, weights, detectors, sample
     for tile in range(0, size, CHECK_TILE):
         tile_end = min(size, tile + CHECK_TILE)
         for b in range(bits):
-            word = b >> 6
-            shift = np.uint64(b & 63)
             end = block_indptr[k, b + 1]
             p = cursor[b]
             while p < end:
@@ -983,7 +1060,7 @@ def _check_block(post, block_indptr, lo, size, words, weights, detectors, sample
                 if off >= tile_end:
                     break
                 row = lo + off if detectors == 1 else (lo + off) // detectors
-                if (words[row, word] >> shift) & np.uint64(1) == 0:
+                if not _stored_has(table, row, b):
                     return 3, p
                 counts[off] += 1
                 p += 1
@@ -997,7 +1074,7 @@ def _check_block(post, block_indptr, lo, size, words, weights, detectors, sample
 
 
 @parallel_kernel
-def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detectors, sample_size):
+def check_postings(post, block_indptr, block_lo, block_hi, table, weights, detectors, sample_size):
     """Check postings read from a file against the codes they index.
 
     The caller has already checked the *shape* of the tables (``block_indptr``
@@ -1024,7 +1101,7 @@ def check_postings(post, block_indptr, block_lo, block_hi, words, weights, detec
         size = block_hi[k] - lo
         counts = np.zeros(size, dtype=np.int32)
         cursor = np.empty(bits, dtype=np.int64)
-        problem, where = _check_block(post, block_indptr, lo, size, words, weights, detectors, sample_size, k, counts,
+        problem, where = _check_block(post, block_indptr, lo, size, table, weights, detectors, sample_size, k, counts,
                                       cursor)
         problems[k] = problem
         wheres[k] = where
@@ -1071,7 +1148,7 @@ def bit_usage(words, rows, skip):
 
 
 @kernel
-def matches_in_rows(q_words, words, rows, min_overlap):
+def matches_in_rows(q_words, table, rows, min_overlap):
     """Every (query, row) with overlap >= min_overlap, rows taken from ``rows``.
 
     ``q_words`` holds one packed query per row. Returns ``(counts, hit_rows,
@@ -1083,7 +1160,7 @@ def matches_in_rows(q_words, words, rows, min_overlap):
     counts = np.zeros(n_q, dtype=np.int64)
     for i in range(n_q):
         for t in range(rows.shape[0]):
-            if _row_overlap(words[rows[t]], q_words[i]) >= min_overlap:
+            if _stored_overlap(table, rows[t], q_words[i]) >= min_overlap:
                 counts[i] += 1
     total = 0
     for i in range(n_q):
@@ -1093,7 +1170,7 @@ def matches_in_rows(q_words, words, rows, min_overlap):
     n = 0
     for i in range(n_q):
         for t in range(rows.shape[0]):
-            ov = _row_overlap(words[rows[t]], q_words[i])
+            ov = _stored_overlap(table, rows[t], q_words[i])
             if ov >= min_overlap:
                 hit_rows[n] = rows[t]
                 overlaps[n] = ov

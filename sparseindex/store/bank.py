@@ -68,8 +68,9 @@ class DetectorBank:
     --------
     >>> import numpy as np
     >>> bank = DetectorBank(bits=16, threshold=2, sample_size=None, detectors=1, seed=0)
+    >>> from sparseindex.codes import packed_table
     >>> words = np.array([[(1 << 1) | (1 << 4) | (1 << 9)]], dtype=np.uint64)
-    >>> bank.append(words, np.array([0]))
+    >>> bank.append(packed_table(words), np.array([0]), np.array([3]))
     >>> bank.postings_count, bank.rows
     (3, 1)
     """
@@ -108,14 +109,15 @@ class DetectorBank:
             indptr, indices, np.asarray(code_ids, dtype=np.int64), self.detectors, sample_size, np.uint64(self.seed)
         )
 
-    def append(self, words: np.ndarray, code_ids: np.ndarray) -> None:
-        """Sample and index the detectors of new rows (packed words + their ids).
+    def append(self, table: tuple, code_ids: np.ndarray, weights: np.ndarray) -> None:
+        """Sample and index the detectors of new rows (a kernel row table, their ids and weights).
 
         :meth:`prepare_append` then :meth:`commit_append`. O(batch postings).
         """
-        self.commit_append(self.prepare_append(words, code_ids))
+        self.commit_append(self.prepare_append(table, code_ids, weights))
 
-    def prepare_append(self, words: np.ndarray, code_ids: np.ndarray, count_usage: bool = True) -> "PendingAppend":
+    def prepare_append(self, table: tuple, code_ids: np.ndarray, weights: np.ndarray,
+                       count_usage: bool = True) -> "PendingAppend":
         """Everything an append computes, without changing what readers see.
 
         The new postings are sized from the rows' weights first, so the
@@ -126,7 +128,8 @@ class DetectorBank:
         tables. An error (MemoryError included) leaves the bank as it was.
         Only one thread may prepare or commit at a time.
         """
-        rows = words.shape[0]
+        weights = np.asarray(weights, dtype=np.int64)
+        rows = weights.shape[0]
         if (self.rows + rows) * self.detectors > MAX_DETECTORS_TOTAL:
             raise OverflowError(
                 f"a store holds at most {MAX_DETECTORS_TOTAL // self.detectors:,} codes with "
@@ -134,7 +137,6 @@ class DetectorBank:
             )
         sample_size = -1 if self.sample_size is None else self.sample_size
         code_ids = np.asarray(code_ids, dtype=np.int64)
-        weights = _kernels.row_weights(words)
         take = weights if sample_size < 0 else np.minimum(weights, sample_size)
         chunk_rows = np.arange(0, rows + APPEND_CHUNK_ROWS, APPEND_CHUNK_ROWS, dtype=np.int64)
         chunk_rows[-1] = rows
@@ -162,7 +164,7 @@ class DetectorBank:
         max_sample = self._max_sample
         max_weight = max(self._max_weight, int(weights.max())) if rows else self._max_weight
         if rows:
-            args = (words, code_ids, self.rows, self.detectors, sample_size, np.uint64(self.seed), self.bits,
+            args = (table, code_ids, self.rows, self.detectors, sample_size, np.uint64(self.seed), self.bits,
                     self.block_span, chunk_rows, buffer, post_starts, new_indptr, new_lo, new_hi, block_starts,
                     usage, weight_hist, count_usage)
             if chunk_rows.shape[0] > 2:
@@ -265,12 +267,12 @@ class DetectorBank:
         self._block_lo = np.concatenate([self._block_lo[: first + 1], self._block_lo[last:]])
         self._block_hi = np.concatenate([self._block_hi[:first], self._block_hi[last - 1 : last], self._block_hi[last:]])
 
-    def rebuilt(self, words: np.ndarray, code_ids: np.ndarray) -> "DetectorBank":
+    def rebuilt(self, table: tuple, code_ids: np.ndarray, weights: np.ndarray) -> "DetectorBank":
         """A new bank holding exactly these rows (used by compaction)."""
         fresh = DetectorBank(self.bits, self.threshold, self.sample_size, self.detectors, self.seed, self.block_span)
         fresh.verify_cost = self.verify_cost
-        if words.shape[0]:
-            fresh.append(words, code_ids)
+        if weights.shape[0]:
+            fresh.append(table, code_ids, weights)
         return fresh
 
     # -- scanning --------------------------------------------------------
@@ -322,7 +324,7 @@ class DetectorBank:
     def counters_fit(self, counters: np.ndarray) -> bool:
         return counters.dtype == self.counter_dtype() and counters.shape[0] >= self.block_span
 
-    def scan_one(self, q_bits, q_words, words, removed, min_overlap, counters):
+    def scan_one(self, q_bits, q_words, table, removed, min_overlap, counters):
         """Rows hit by one query, with their exact overlaps (kernel ``query_one``).
 
         ``counters`` comes from :meth:`new_counters` and is returned zeroed.
@@ -333,7 +335,7 @@ class DetectorBank:
         serially rather than wait.
         """
         postings = (self._post, self._block_indptr, self._block_lo, self._block_hi)
-        rest = (self.threshold, self.detectors, removed, words, min_overlap, self._bit_postings, self.whole_codes,
+        rest = (self.threshold, self.detectors, removed, table, min_overlap, self._bit_postings, self.whole_codes,
                 self.verify_cost)
         threads = thread_count()
         if (
@@ -353,7 +355,7 @@ class DetectorBank:
                 PARALLEL_LOCK.release()
         return _kernels.query_one(q_bits, q_words, *postings, counters, *rest)
 
-    def scan_many(self, q_indptr, q_bits, q_words, words, removed, min_overlap):
+    def scan_many(self, q_indptr, q_bits, q_words, table, removed, min_overlap):
         """Rows hit by each of many queries, in parallel (kernel ``query_batch``).
 
         Returns ``(counts, rows, overlaps)``: ``counts[i]`` hits for query
@@ -391,7 +393,7 @@ class DetectorBank:
                     self.threshold,
                     self.detectors,
                     removed,
-                    words,
+                    table,
                     min_overlap,
                     lo,
                     hi,

@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import health, validation
-from ..codes import Codes, as_code, as_codes, packed_words
+from ..codes import Codes, as_code, as_codes, packed_words, row_table
 from .bank import BLOCK_SPAN, DetectorBank
 from .hits import BatchHits, Hits, batch_of, no_hits
 
@@ -605,11 +605,12 @@ def matches_within(batch: Codes, m: int) -> BatchHits:
     usable = np.flatnonzero(batch.weights >= m)
     if usable.size == 0:
         return no_hits(n)
-    words = packed_words(batch[usable])
+    sub = batch[usable]
     bank = DetectorBank(batch.bits, m, None, 1, 0, BLOCK_SPAN)
-    bank.commit_append(bank.prepare_append(words, np.arange(usable.size, dtype=np.int64), count_usage=False))
+    bank.commit_append(bank.prepare_append(row_table(sub), np.arange(usable.size, dtype=np.int64), sub.weights,
+                                           count_usage=False))
     q_indptr, q_bits = batch.to_csr()
-    counts, rows, overlaps = bank.scan_many(q_indptr, q_bits, packed_words(batch), words,
+    counts, rows, overlaps = bank.scan_many(q_indptr, q_bits, packed_words(batch), row_table(sub),
                                             np.zeros(usable.size, dtype=bool), m)
     return batch_of(n, [counts], [usable[rows]], [overlaps])
 

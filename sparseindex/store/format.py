@@ -31,12 +31,13 @@ import numpy as np
 
 from .._numba import kernels as _kernels
 from .._numba.config import PARALLEL_LOCK
+from ..codes import index_dtype, index_table, packed_table
 from ..version import __version__
 from ..errors import FormatVersionWarning, StoreFormatError
 
 MAGIC = b"\x89SIDX\r\n\x1a"
 FORMAT_MAJOR = 1
-FORMAT_MINOR = 1
+FORMAT_MINOR = 2
 #: Keys that format 1.0 (and sharded manifest format 1) spelled differently; nothing else changed.
 RENAMED_KEYS = {"segment": "sample_size", "active": "weight", "capacity": "limit"}
 _PARAM_RENAMES = {old: new for old, new in RENAMED_KEYS.items() if new == "sample_size"}
@@ -58,7 +59,8 @@ class StoreState:
     """Everything a store file holds, as arrays and plain values.
 
     ``weights`` and ``max_sample`` are derived (not stored): :func:`read_file`
-    recomputes them from ``words``.
+    recomputes them from the rows. Rows are ``words`` (``row_layout``
+    ``"packed"``) or ``row_indptr`` / ``row_indices`` (``"sparse"``).
 
     Examples
     --------
@@ -79,7 +81,7 @@ class StoreState:
     rows: int
     next_id: int
     removed_count: int
-    words: np.ndarray
+    words: np.ndarray | None
     removed: np.ndarray
     row_ids: np.ndarray | None
     block_lo: np.ndarray
@@ -88,6 +90,9 @@ class StoreState:
     postings: np.ndarray
     weights: np.ndarray | None = None
     max_sample: int = 0
+    row_layout: str = "packed"
+    row_indptr: np.ndarray | None = None  # sparse rows: rows + 1 int64 pointers
+    row_indices: np.ndarray | None = None  # sparse rows: sorted set-bit indices, narrowest unsigned type
 
 
 def _fail(section, problem, path=None):
@@ -108,11 +113,20 @@ def _little(array: np.ndarray) -> np.ndarray:
 
 def _dtype_name(array: np.ndarray) -> str:
     return {np.dtype(np.uint64): "<u8", np.dtype(np.int64): "<i8", np.dtype(np.uint16): "<u2",
-            np.dtype(np.uint8): "|u1", np.dtype(np.bool_): "|u1"}[array.dtype]
+            np.dtype(np.uint32): "<u4", np.dtype(np.uint8): "|u1", np.dtype(np.bool_): "|u1"}[array.dtype]
+
+
+def index_dtype_name(bits: int) -> str:
+    """The file dtype of sparse row indices for a width: the narrowest unsigned type."""
+    return {1: "|u1", 2: "<u2", 4: "<u4", 8: "<u8"}[np.dtype(index_dtype(bits)).itemsize]
 
 
 def _section_arrays(state: StoreState):
-    sections = [("words", state.words), ("removed", state.removed.view(np.uint8))]
+    if state.row_layout == "sparse":
+        sections = [("row_indptr", state.row_indptr), ("row_indices", state.row_indices)]
+    else:
+        sections = [("words", state.words)]
+    sections.append(("removed", state.removed.view(np.uint8)))
     if state.row_ids is not None:
         sections.append(("row_ids", state.row_ids))
     sections += [
@@ -142,7 +156,7 @@ def encode(state: StoreState):
     >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
     >>> head, pieces, size = encode(store._state())
     >>> head[:8] == MAGIC, all(offset % 64 == 0 for offset, _ in pieces), size
-    (True, True, 1674)
+    (True, True, 1738)
     """
     table, pieces = [], []
     for name, array in _section_arrays(state):
@@ -156,11 +170,13 @@ def encode(state: StoreState):
         "params": {
             "bits": state.bits, "threshold": state.threshold, "sample_size": state.sample_size,
             "detectors": state.detectors, "seed": state.seed, "block_span": state.block_span,
+            "row_layout": state.row_layout,
         },
         "plan": state.plan,
         "counts": {
             "rows": state.rows, "next_id": state.next_id, "removed": state.removed_count,
             "blocks": int(state.block_lo.shape[0]), "postings": int(state.postings.shape[0]),
+            "set_bits": 0 if state.row_indices is None else int(state.row_indices.shape[0]),
         },
         "sections": table,
     }
@@ -212,7 +228,7 @@ def dumps(state: StoreState) -> bytes:
     >>> store = Store(bits=64, threshold=2, seed=3); _ = store.add([[1, 2, 3], [7, 8]])
     >>> data = dumps(store._state())
     >>> len(data), read_bytes(data).rows
-    (1674, 2)
+    (1738, 2)
     """
     head, pieces, size = encode(state)
     out = bytearray()
@@ -257,7 +273,7 @@ def save_file(path, state: StoreState) -> None:
     >>> folder = tempfile.mkdtemp(); path = os.path.join(folder, "depot.sidx")
     >>> save_file(path, store._state())
     >>> os.listdir(folder), os.path.getsize(path)      # no temporary file left behind
-    (['depot.sidx'], 1674)
+    (['depot.sidx'], 1738)
     """
     path = os.fspath(path)
     head, pieces, _ = encode(state)
@@ -382,35 +398,47 @@ class _Fields:
         return value
 
 
-def _parse_params(header, strict, path):
+def _parse_params(header, strict, minor, path):
     top = _Fields(header, "header", ("kind", "written_by", "params", "plan", "counts", "sections"), strict, path)
     if header["kind"] != KIND:
         _fail("header", f"kind={header['kind']!r} is not {KIND!r}", path)
-    p = _Fields(header["params"], "params", ("bits", "threshold", "sample_size", "detectors", "seed", "block_span"),
-                strict, path)
+    since_1_2 = ("row_layout",) if minor >= 2 else ()
+    p = _Fields(header["params"], "params",
+                ("bits", "threshold", "sample_size", "detectors", "seed", "block_span") + since_1_2, strict, path)
+    layout = header["params"]["row_layout"] if minor >= 2 else "packed"
+    if layout not in ("packed", "sparse"):
+        _fail("params", f"row_layout={layout!r} is not 'packed' or 'sparse'", path)
     bits = p.int("bits", 1, MAX_BITS)
     threshold = p.int("threshold", 1, bits)
     sample_size = p.int("sample_size", threshold, 2**31 - 1, allow_none=True)
     detectors = p.int("detectors", 1, MAX_DETECTORS_TOTAL)
     seed = p.int("seed", 0, 2**64 - 1)
     block_span = p.int("block_span", 1, 2**16)
-    c = _Fields(header["counts"], "counts", ("rows", "next_id", "removed", "blocks", "postings"), strict, path)
+    c = _Fields(header["counts"], "counts",
+                ("rows", "next_id", "removed", "blocks", "postings") + (("set_bits",) if minor >= 2 else ()), strict, path)
     next_id = c.int("next_id", 0, 2**62)
     rows = c.int("rows", 0, min(next_id, MAX_DETECTORS_TOTAL // detectors))
     removed = c.int("removed", 0, rows)
     blocks = c.int("blocks", 0, 2**62)
     postings = c.int("postings", 0, 2**62)
+    set_bits = c.int("set_bits", 0, 2**62) if minor >= 2 else 0
+    if layout == "packed" and set_bits:
+        _fail("counts", f"set_bits={set_bits} in a store with packed rows (it counts sparse row indices)", path)
     if (blocks == 0) != (rows == 0):
         _fail("counts", f"blocks={blocks} with rows={rows}: a store has blocks exactly when it has rows", path)
     del top
     return dict(bits=bits, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=seed,
                 block_span=block_span, rows=rows, next_id=next_id, removed_count=removed, blocks=blocks,
-                postings=postings)
+                postings=postings, row_layout=layout, set_bits=set_bits)
 
 
 def _expected_sections(v):
     rows, bits = v["rows"], v["bits"]
-    out = [("words", "<u8", (rows, (bits + 63) // 64)), ("removed", "|u1", (rows,))]
+    if v["row_layout"] == "sparse":
+        out = [("row_indptr", "<i8", (rows + 1,)), ("row_indices", index_dtype_name(bits), (v["set_bits"],))]
+    else:
+        out = [("words", "<u8", (rows, (bits + 63) // 64))]
+    out.append(("removed", "|u1", (rows,)))
     if rows < v["next_id"]:
         out.append(("row_ids", "<i8", (rows,)))
     out += [
@@ -524,7 +552,7 @@ def _view(buf: np.ndarray, dtype: str, shape, offset: int, nbytes: int) -> np.nd
     return arr
 
 
-def _validate_blocks(arrays, words, weights, v, path):
+def _validate_blocks(arrays, table, weights, v, path):
     """Block ranges, offsets and every posting against the codes (kernel ``check_postings``)."""
     rows, detectors = v["rows"], v["detectors"]
     lo, hi, indptr, post = arrays["block_lo"], arrays["block_hi"], arrays["block_indptr"], arrays["postings"]
@@ -550,7 +578,7 @@ def _validate_blocks(arrays, words, weights, v, path):
             _fail("block_lo", f"{tail_rows.shape[0]} blocks in the last span, more than a store ever keeps", path)
         sample_size = -1 if v["sample_size"] is None else v["sample_size"]
         with PARALLEL_LOCK:
-            problem, where = _kernels.check_postings(post, indptr, lo, hi, words, weights, detectors, sample_size)
+            problem, where = _kernels.check_postings(post, indptr, lo, hi, table, weights, detectors, sample_size)
         messages = {
             1: f"posting {where} points outside its block",
             2: f"posting {where} breaks the ascending order of its bit",
@@ -561,6 +589,30 @@ def _validate_blocks(arrays, words, weights, v, path):
             _fail("postings", messages[int(problem)], path)
     elif post.shape[0]:
         _fail("postings", f"{post.shape[0]} postings in a store without rows", path)
+
+
+def _validated_rows(arrays, v, path):
+    """The rows as a kernel row table, their weights, and the section to blame for a bad row."""
+    rows, bits = v["rows"], v["bits"]
+    if v["row_layout"] == "sparse":
+        indptr, indices = arrays["row_indptr"], arrays["row_indices"]
+        if indptr[0] != 0 or indptr[-1] != indices.shape[0]:
+            _fail("row_indptr", f"pointers run {int(indptr[0])}..{int(indptr[-1])}, not 0..{indices.shape[0]}", path)
+        steps = np.flatnonzero(np.diff(indptr) < 0)
+        if steps.size:
+            _fail("row_indptr", f"pointers descend at row {int(steps[0])}", path)
+        problem, row = _kernels.check_index_rows(indptr, indices, bits)
+        if problem:
+            what = {1: f"has an index >= bits={bits}", 2: "is not strictly ascending (unsorted or repeated)"}
+            _fail("row_indices", f"row {int(row)} {what[int(problem)]}", path)
+        return index_table(indptr, indices, bits), np.diff(indptr), "row_indices"
+    words = arrays["words"]
+    tail = bits % 64
+    if tail and rows:
+        dirty = np.flatnonzero(words[:, -1] >> np.uint64(tail))
+        if dirty.size:
+            _fail("words", f"row {int(dirty[0])} has bits set above bits={bits} (padding must be zero)", path)
+    return packed_table(words), _kernels.row_weights(words), "words"
 
 
 def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
@@ -576,7 +628,7 @@ def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
         if zlib.crc32(buf[offset : offset + nbytes]) != crc:
             _fail(name, "CRC32 mismatch: the section is corrupt", path)
         arrays[name] = _view(buf, dtype, shape, offset, nbytes)
-    rows, bits = v["rows"], v["bits"]
+    rows = v["rows"]
 
     removed_raw = arrays["removed"]
     if rows and removed_raw.max() > 1:
@@ -595,19 +647,13 @@ def _validate_body(buf, header_text, v, layout, gaps, unknown, path):
         if row_ids[0] < 0 or row_ids[-1] >= v["next_id"]:
             _fail("row_ids", f"ids {int(row_ids[0])}..{int(row_ids[-1])} outside 0..{v['next_id'] - 1}", path)
 
-    words = arrays["words"]
-    tail = bits % 64
-    if tail and rows:
-        dirty = np.flatnonzero(words[:, -1] >> np.uint64(tail))
-        if dirty.size:
-            _fail("words", f"row {int(dirty[0])} has bits set above bits={bits} (padding must be zero)", path)
-    weights = _kernels.row_weights(words)
+    table, weights, rows_section = _validated_rows(arrays, v, path)
     light = np.flatnonzero(weights < v["threshold"])
     if light.size:
         r = int(light[0])
-        _fail("words", f"row {r} has {int(weights[r])} set bits, fewer than threshold={v['threshold']}", path)
+        _fail(rows_section, f"row {r} has {int(weights[r])} set bits, fewer than threshold={v['threshold']}", path)
 
-    _validate_blocks(arrays, words, weights, v, path)
+    _validate_blocks(arrays, table, weights, v, path)
     max_sample = 0
     if rows:
         top = int(weights.max())
@@ -653,7 +699,7 @@ def _state_from(buf, header_text, header, minor, size, path) -> StoreState:
     strict = minor <= FORMAT_MINOR
     if minor == 0:
         header = _header_from_1_0(header, path)
-    v = _parse_params(header, strict, path)
+    v = _parse_params(header, strict, minor, path)
     plan = _parse_plan(header["plan"], v, path)
     data_start = PREAMBLE.size + len(header_text)
     layout, gaps, unknown = _parse_layout(header, v, strict, data_start, size, path)
@@ -663,7 +709,8 @@ def _state_from(buf, header_text, header, minor, size, path) -> StoreState:
     return StoreState(
         bits=v["bits"], threshold=v["threshold"], sample_size=v["sample_size"], detectors=v["detectors"],
         seed=v["seed"], block_span=v["block_span"], plan=plan, rows=v["rows"], next_id=v["next_id"],
-        removed_count=v["removed_count"], words=arrays["words"], removed=removed, row_ids=arrays.get("row_ids"),
+        removed_count=v["removed_count"], words=arrays.get("words"), removed=removed, row_ids=arrays.get("row_ids"),
+        row_layout=v["row_layout"], row_indptr=arrays.get("row_indptr"), row_indices=arrays.get("row_indices"),
         block_lo=arrays["block_lo"], block_hi=arrays["block_hi"], block_indptr=arrays["block_indptr"],
         postings=arrays["postings"], weights=weights.astype(np.int32), max_sample=max_sample,
     )

@@ -16,37 +16,65 @@ import numpy as np
 from .. import validation
 from .._numba import kernels
 from .._numba.config import PARALLEL_LOCK
+from ..codes import (PACKED_MAX_BITS, Codes, adopt_csr, adopt_words, index_dtype, index_table, packed_table,
+                     packed_words, row_table)
 
-__all__ = ["RowTable", "PendingRows", "UsageCounts"]
+__all__ = ["RowTable", "PendingRows", "UsageCounts", "LAYOUTS", "layout_for"]
+
+
+#: The two row layouts: packed words (narrow codes) or sorted set-bit indices (wide ones).
+LAYOUTS = ("packed", "sparse")
+
+
+def layout_for(bits: int) -> str:
+    """The layout a store of this width keeps its rows in: packed up to ``PACKED_MAX_BITS``, indices above.
+
+    Examples
+    --------
+    >>> layout_for(2048), layout_for(2**20)
+    ('packed', 'sparse')
+    """
+    return "packed" if bits <= PACKED_MAX_BITS else "sparse"
 
 
 class PendingRows:
     """New row arrays for an append, ready to be swapped in by :meth:`RowTable.commit`."""
 
-    __slots__ = ("words", "weights", "removed", "row_ids", "rows", "next_id")
+    __slots__ = ("words", "indptr", "indices", "weights", "removed", "row_ids", "rows", "next_id")
 
-    def __init__(self, words, weights, removed, row_ids, rows, next_id):
-        self.words, self.weights, self.removed, self.row_ids = words, weights, removed, row_ids
+    def __init__(self, words, indptr, indices, weights, removed, row_ids, rows, next_id):
+        self.words, self.indptr, self.indices = words, indptr, indices
+        self.weights, self.removed, self.row_ids = weights, removed, row_ids
         self.rows, self.next_id = rows, next_id
 
 
 class RowTable:
-    """Packed codes by row, with weights, removal flags and the id <-> row map.
+    """Stored codes by row — packed words or sorted indices — with weights, removal flags and the id <-> row map.
+
+    ``layout="packed"``: row ``r`` is ``words[r]``. ``layout="sparse"``: its
+    set bits are ``indices[indptr[r]:indptr[r + 1]]``, ascending, in the
+    narrowest unsigned type for the width; memory follows the set bits.
+    :meth:`kernel_table` hands either to the kernels.
 
     Examples
     --------
     >>> from sparseindex import Codes
     >>> table = RowTable(16)
     >>> batch = Codes.from_indices([[1, 2], [3]], 16)
-    >>> table.commit(table.prepare_append(batch.words, batch.weights, np.array([0, 5])))
+    >>> table.commit(table.prepare_append(batch, np.array([0, 5])))
     >>> table.row_of(5), table.row_of(1), table.live_ids().tolist()
     (1, -1, [0, 5])
     >>> table.check()
     """
 
-    def __init__(self, bits: int):
+    def __init__(self, bits: int, layout: str = "packed"):
+        if layout not in LAYOUTS:
+            raise ValueError(f"layout={layout!r} must be one of {LAYOUTS}")
         self.bits = bits
+        self.layout = layout
         self.words = np.zeros((0, (bits + 63) // 64), dtype=np.uint64)
+        self.indptr = np.zeros(1, dtype=np.int64)  # sparse: rows + 1 used, spare room after
+        self.indices = np.zeros(0, dtype=index_dtype(bits))
         self.weights = np.zeros(0, dtype=np.int32)
         self.removed = np.zeros(0, dtype=bool)
         self.row_ids = None  # None: row r holds id r
@@ -55,14 +83,19 @@ class RowTable:
         self.removed_count = 0
 
     @classmethod
-    def from_arrays(cls, bits, *, words, weights, removed, row_ids, rows, next_id, removed_count) -> "RowTable":
+    def from_arrays(cls, bits, *, words=None, indptr=None, indices=None, weights, removed, row_ids, rows, next_id,
+                    removed_count) -> "RowTable":
         """A table over already-checked arrays (a loaded file), without copying them."""
-        table = cls(bits)
-        table.adopt(words, weights, removed, row_ids, rows, next_id, removed_count)
+        table = cls(bits, "packed" if indptr is None else "sparse")
+        table.adopt(words, indptr, indices, weights, removed, row_ids, rows, next_id, removed_count)
         return table
 
-    def adopt(self, words, weights, removed, row_ids, rows, next_id, removed_count) -> None:
-        self.words, self.weights, self.removed, self.row_ids = words, weights, removed, row_ids
+    def adopt(self, words, indptr, indices, weights, removed, row_ids, rows, next_id, removed_count) -> None:
+        if self.layout == "packed":
+            self.words = words
+        else:
+            self.indptr, self.indices = indptr, indices
+        self.weights, self.removed, self.row_ids = weights, removed, row_ids
         self.rows, self.next_id, self.removed_count = rows, next_id, removed_count
 
     # -- sizes ------------------------------------------------------------
@@ -74,8 +107,15 @@ class RowTable:
 
     @property
     def nbytes(self) -> int:
-        total = self.words.nbytes + self.weights.nbytes + self.removed.nbytes
+        total = self.weights.nbytes + self.removed.nbytes
+        total += self.words.nbytes if self.layout == "packed" else self.indptr.nbytes + self.indices.nbytes
         return total + (0 if self.row_ids is None else self.row_ids.nbytes)
+
+    def kernel_table(self) -> tuple:
+        """The rows as a kernel row table (views of the used part)."""
+        if self.layout == "packed":
+            return packed_table(self.words)
+        return index_table(self.indptr[: self.rows + 1], self.indices[: self.indptr[self.rows]], self.bits)
 
     # -- ids <-> rows -----------------------------------------------------
 
@@ -125,46 +165,74 @@ class RowTable:
         """Ids of every stored code, ascending."""
         return self.ids_of(self.live_rows())
 
+    def codes_of(self, rows: np.ndarray) -> Codes:
+        """The codes of ``rows`` as a new batch."""
+        if self.layout == "packed":
+            return adopt_words(self.words[rows], self.bits)
+        indptr, indices = self._gather(rows)
+        return adopt_csr(indptr, indices, self.bits)
+
+    def _gather(self, rows):
+        lengths = self.indptr[rows + 1] - self.indptr[rows]
+        indptr = np.zeros(rows.shape[0] + 1, dtype=np.int64)
+        np.cumsum(lengths, out=indptr[1:])
+        at = np.repeat(self.indptr[rows] - indptr[:-1], lengths) + np.arange(indptr[-1])
+        return indptr, self.indices[at]
+
     # -- changes ----------------------------------------------------------
 
-    def prepare_append(self, words: np.ndarray, weights: np.ndarray, ids: np.ndarray, *,
-                       adopt: bool = False) -> PendingRows:
-        """Row arrays holding the current rows and ``words`` under ``ids`` (ascending, from ``next_id`` up).
+    def prepare_append(self, batch: Codes, ids: np.ndarray, *, adopt: bool = False) -> PendingRows:
+        """Row arrays holding the current rows and ``batch`` under ``ids`` (ascending, from ``next_id`` up).
 
-        Nothing a reader sees is written: growth copies into new buffers,
-        otherwise the new rows go into the room past ``rows``. ``adopt``
-        lets an empty table take ``words`` itself (a batch that never
-        changes), sparing a copy of fresh memory.
+        Nothing a reader sees is written: growth copies into new buffers
+        (1.5 times the room needed), otherwise the new rows go into the
+        room past ``rows``. ``adopt`` lets an empty packed table take the
+        batch's words themselves (a batch never changes), sparing a copy of
+        fresh memory.
         """
-        m, used = words.shape[0], self.rows
+        m, used = len(batch), self.rows
         need = used + m
-        table_words, table_weights, removed, row_ids = self.words, self.weights, self.removed, self.row_ids
+        weights, removed, row_ids = self.weights, self.removed, self.row_ids
         if row_ids is None and not np.array_equal(ids, np.arange(self.next_id, self.next_id + m)):
             # ids and rows part ways here: start the row -> id table
-            row_ids = np.arange(max(table_words.shape[0], used), dtype=np.int64)
-        if adopt and used == 0:
-            return PendingRows(words, weights.astype(np.int32), np.zeros(m, dtype=bool),
-                               None if row_ids is None else ids.astype(np.int64, copy=True), need, int(ids[-1]) + 1)
-        if need > table_words.shape[0]:
-            # room first: a MemoryError here changes nothing
-            room = max(need, int(table_words.shape[0] * 1.5))
-            table_words, table_weights = _grown(table_words, room, used), _grown(table_weights, room, used)
-            removed = _grown(removed, room, used)
+            row_ids = np.arange(max(weights.shape[0], used), dtype=np.int64)
+        words, indptr, indices = self.words, self.indptr, self.indices
+        if self.layout == "packed":
+            new_words = packed_words(batch)
+            if adopt and used == 0:
+                return PendingRows(new_words, indptr, indices, batch.weights.astype(np.int32),
+                                   np.zeros(m, dtype=bool),
+                                   None if row_ids is None else ids.astype(np.int64, copy=True), need, int(ids[-1]) + 1)
+            if need > words.shape[0]:
+                words = _grown(words, _room(need, words.shape[0]), used)
+            words[used:need] = new_words
+        else:
+            _, b_indptr, b_indices = row_table(batch) if batch.layout == "sparse" else (None, *batch.to_csr())
+            start = int(indptr[used])
+            end = start + b_indices.shape[0]
+            if need + 1 > indptr.shape[0]:
+                indptr = _grown(indptr, _room(need + 1, indptr.shape[0]), used + 1)
+            if end > indices.shape[0]:
+                indices = _grown(indices, _room(end, indices.shape[0]), start)
+            indptr[used + 1 : need + 1] = start + b_indptr[1:]
+            indices[start:end] = b_indices
+        if need > weights.shape[0]:
+            room = _room(need, weights.shape[0])
+            weights, removed = _grown(weights, room, used), _grown(removed, room, used)
             if row_ids is not None:
                 row_ids = _grown(row_ids, room, used)
         elif row_ids is not None and need > row_ids.shape[0]:
-            row_ids = _grown(row_ids, table_words.shape[0], used)
-        table_words[used:need] = words
-        table_weights[used:need] = weights
+            row_ids = _grown(row_ids, weights.shape[0], used)
+        weights[used:need] = batch.weights
         removed[used:need] = False
         if row_ids is not None:
             row_ids[used:need] = ids
-        return PendingRows(table_words, table_weights, removed, row_ids, need, int(ids[-1]) + 1)
+        return PendingRows(words, indptr, indices, weights, removed, row_ids, need, int(ids[-1]) + 1)
 
     def commit(self, pending: PendingRows) -> None:
         """Swap in prepared arrays; cannot fail."""
-        self.adopt(pending.words, pending.weights, pending.removed, pending.row_ids, pending.rows,
-                   pending.next_id, self.removed_count)
+        self.adopt(pending.words, pending.indptr, pending.indices, pending.weights, pending.removed,
+                   pending.row_ids, pending.rows, pending.next_id, self.removed_count)
 
     def mark_removed(self, rows: np.ndarray) -> None:
         self.removed[rows] = True
@@ -172,24 +240,30 @@ class RowTable:
 
     def compacted(self) -> "RowTable":
         """A new table of the live rows only; ids and ``next_id`` unchanged."""
-        live = ~self.removed[: self.rows]
-        kept = int(live.sum())
-        ids_kept = self.ids_of(np.flatnonzero(live))
+        live = self.live_rows()
+        kept = live.shape[0]
+        ids_kept = self.ids_of(live)
+        parts = dict(words=np.ascontiguousarray(self.words[live])) if self.layout == "packed" else dict(
+            zip(("indptr", "indices"), self._gather(live)))
         return RowTable.from_arrays(
-            self.bits, words=np.ascontiguousarray(self.words[: self.rows][live]),
-            weights=self.weights[: self.rows][live].copy(), removed=np.zeros(kept, dtype=bool),
+            self.bits, **parts, weights=self.weights[live].copy(), removed=np.zeros(kept, dtype=bool),
             row_ids=None if kept == self.next_id else ids_kept, rows=kept, next_id=self.next_id, removed_count=0)
 
     # -- derived figures --------------------------------------------------
 
-    def indices(self, rows=None):
-        """CSR (indptr, set-bit indices) of ``rows`` (None: every row)."""
-        if rows is None:
-            return kernels.unpack_indices(self.words[: self.rows], self.weights[: self.rows].astype(np.int64))
-        return kernels.unpack_indices(self.words[rows], self.weights[rows].astype(np.int64))
+    def indices_of(self, rows=None):
+        """CSR (indptr, set-bit indices as int64) of ``rows`` (None: every row)."""
+        rows = np.arange(self.rows) if rows is None else np.asarray(rows, dtype=np.int64)
+        if self.layout == "packed":
+            return kernels.unpack_indices(self.words[rows], self.weights[rows].astype(np.int64))
+        indptr, indices = self._gather(rows)
+        return indptr, indices.astype(np.int64)
 
     def bit_usage(self, rows=None) -> np.ndarray:
         """Set-bit counts per bit of ``rows`` (None: every live row)."""
+        if self.layout == "sparse":
+            _, bits = self.indices_of(self.live_rows() if rows is None else rows)
+            return np.bincount(bits, minlength=self.bits).astype(np.int64)
         if rows is None:
             if self.rows == 0:
                 return np.zeros(self.bits, dtype=np.int64)
@@ -209,13 +283,28 @@ class RowTable:
     def check(self, threshold: int = 1) -> None:
         """Every invariant of the table; AssertionError describing the first that fails."""
         n = self.rows
-        state = f"RowTable(bits={self.bits}, rows={n}, next_id={self.next_id}, removed={self.removed_count})"
-        assert self.words.shape[0] >= n and self.weights.shape[0] >= n and self.removed.shape[0] >= n, state
-        words = self.words[:n]
-        assert np.array_equal(kernels.row_weights(words), self.weights[:n].astype(np.int64)), f"weights stale: {state}"
-        tail = self.bits % 64
-        if tail and n:
-            assert not np.any(words[:, -1] >> np.uint64(tail)), f"padding bits set: {state}"
+        state = (f"RowTable(bits={self.bits}, {self.layout}, rows={n}, next_id={self.next_id}, "
+                 f"removed={self.removed_count})")
+        assert self.weights.shape[0] >= n and self.removed.shape[0] >= n, state
+        if self.layout == "packed":
+            assert self.words.shape[0] >= n, state
+            words = self.words[:n]
+            assert np.array_equal(kernels.row_weights(words), self.weights[:n].astype(np.int64)), \
+                f"weights stale: {state}"
+            tail = self.bits % 64
+            if tail and n:
+                assert not np.any(words[:, -1] >> np.uint64(tail)), f"padding bits set: {state}"
+        else:
+            ptr = self.indptr[: n + 1]
+            assert self.indptr.shape[0] >= n + 1 and ptr[0] == 0 and np.all(np.diff(ptr) >= 0), f"pointers: {state}"
+            assert self.indices.shape[0] >= ptr[-1] and self.indices.dtype == index_dtype(self.bits), state
+            assert np.array_equal(np.diff(ptr), self.weights[:n]), f"weights stale: {state}"
+            idx = self.indices[: ptr[-1]].astype(np.int64)
+            assert idx.size == 0 or idx.max() < self.bits, f"index out of range: {state}"
+            step = np.diff(idx)
+            inner = np.ones(step.shape[0], dtype=bool)
+            inner[ptr[1:-1][ptr[1:-1] > 0] - 1] = False  # a row boundary is not a step inside a row
+            assert np.all(step[inner] > 0), f"indices not ascending within a row: {state}"
         assert int(self.removed[:n].sum()) == self.removed_count, f"removed count: {state}"
         if n:
             assert self.weights[:n].min() >= threshold, f"a stored code is lighter than threshold: {state}"
@@ -261,9 +350,13 @@ class UsageCounts:
         if not self.counted:
             return
         live = table.live_rows()
-        _, bits = table.indices(live)
+        _, bits = table.indices_of(live)
         assert np.array_equal(self.usage, np.bincount(bits, minlength=self.bits)), "bit usage stale"
         assert np.array_equal(self.weight_hist, table.weight_hist()), "weight histogram stale"
+
+
+def _room(need: int, current: int) -> int:
+    return max(need, int(current * 1.5))
 
 
 def _grown(array: np.ndarray, room: int, used: int) -> np.ndarray:

@@ -20,13 +20,13 @@ import numpy as np
 from .. import health, validation
 from .._numba import kernels
 from .._numba.config import PARALLEL_LOCK
-from ..codes import Codes, adopt_words, packed_words
+from ..codes import Codes, packed_words, row_table
 from . import format as _persist
 from .bank import BLOCK_SPAN, DetectorBank
 from .contract import Params, StoreBase
 from .guard import Guard
 from .hits import BatchHits, Hits, batch_of, no_hits
-from .rows import RowTable, UsageCounts
+from .rows import RowTable, UsageCounts, layout_for
 
 __all__ = ["Store", "Hits", "BatchHits", "load_options", "restore_pickled"]
 
@@ -100,6 +100,8 @@ class Store(StoreBase):
 
     #: Detectors per postings block; tests lower it to exercise many blocks.
     _block_span = BLOCK_SPAN
+    #: Row layout: "auto" (by width, :func:`~sparseindex.store.rows.layout_for`); tests force one.
+    _row_layout = "auto"
 
     def __init__(self, bits, *, threshold, sample_size=None, detectors=1, seed=None):
         self._init_parts(Params.checked(bits, threshold, sample_size, detectors, seed), None)
@@ -108,7 +110,7 @@ class Store(StoreBase):
         self._init_contract(params, plan)
         p = params
         self._bank = bank or DetectorBank(p.bits, p.threshold, p.sample_size, p.detectors, p.seed, self._block_span)
-        self._table = table or RowTable(p.bits)
+        self._table = table or RowTable(p.bits, layout_for(p.bits) if self._row_layout == "auto" else self._row_layout)
         self._counts = UsageCounts(p.bits, counted)
         self._guard = Guard("store")
         self._local = threading.local()  # per-thread scan counters
@@ -180,6 +182,11 @@ class Store(StoreBase):
         return self._table.live
 
     @property
+    def row_layout(self) -> str:
+        """How stored rows are held: ``"packed"`` words or ``"sparse"`` sorted indices (chosen by width)."""
+        return self._table.layout
+
+    @property
     def read_only(self) -> bool:
         """True when the store refuses changes (a memory-mapped load, by default)."""
         return self._guard.read_only is not None
@@ -187,7 +194,8 @@ class Store(StoreBase):
     def __repr__(self) -> str:
         p = self._params
         return (f"Store(bits={p.bits}, threshold={p.threshold}, sample_size={p.sample_size}, "
-                f"detectors={p.detectors}, items={len(self)}, removed={self.removed_count}, seed={p.seed})")
+                f"detectors={p.detectors}, items={len(self)}, removed={self.removed_count}, seed={p.seed}, "
+                f"rows={self._table.layout})")
 
     def _figures(self):
         if not self._counts.counted:  # a loaded store counts once, O(N); changes keep it current after
@@ -208,9 +216,8 @@ class Store(StoreBase):
 
     def _put(self, batch: Codes, ids: np.ndarray) -> None:
         # prepare everything where no query looks, then commit under the write lock
-        words = packed_words(batch)
-        rows = self._table.prepare_append(words, batch.weights, ids, adopt=True)
-        pending = self._bank.prepare_append(words, ids)
+        rows = self._table.prepare_append(batch, ids, adopt=True)
+        pending = self._bank.prepare_append(row_table(batch), ids, batch.weights)
         with self._guard.writing():
             self._bank.commit_append(pending)
             self._table.commit(rows)
@@ -230,14 +237,14 @@ class Store(StoreBase):
 
     def _get(self, ids: np.ndarray):
         rows, live = self._table.rows_of(ids)
-        return adopt_words(self._table.words[rows], self.bits), live
+        return self._table.codes_of(rows), live
 
     def _live_ids(self) -> np.ndarray:
         return self._table.live_ids()
 
     def _samples_of(self, ids: np.ndarray) -> list:
         rows = self._table.rows_of(ids)[0]
-        indptr, indices = self._table.indices(rows)
+        indptr, indices = self._table.indices_of(rows)
         det_indptr, det_bits = self._bank.sample(indptr, indices, ids)
         D = self.detectors
         return [det_bits[det_indptr[k * D] : det_indptr[(k + 1) * D]].reshape(D, -1) for k in range(ids.shape[0])]
@@ -253,7 +260,7 @@ class Store(StoreBase):
         table = self._table
         if table.rows == 0:
             return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
-        rows, overlaps = self._bank.scan_one(q.to_csr()[1], packed_words(q)[0], table.words, table.removed,
+        rows, overlaps = self._bank.scan_one(q.to_csr()[1], packed_words(q)[0], table.kernel_table(), table.removed,
                                              min_overlap, self._counters())
         ids = table.ids_of(rows)
         order = np.lexsort((ids, -overlaps))
@@ -264,7 +271,7 @@ class Store(StoreBase):
         if table.rows == 0 or n == 0:
             return no_hits(n)
         q_indptr, q_bits = batch.to_csr()
-        counts, rows, overlaps = self._bank.scan_many(q_indptr, q_bits, packed_words(batch), table.words,
+        counts, rows, overlaps = self._bank.scan_many(q_indptr, q_bits, packed_words(batch), table.kernel_table(),
                                                       table.removed, min_overlap)
         return batch_of(n, [counts], [table.ids_of(rows)], [overlaps])
 
@@ -279,14 +286,14 @@ class Store(StoreBase):
         unsure = np.flatnonzero(~table.removed[:n] & (weights >= m) & (m < self.threshold + weights - sample))
         if unsure.size == 0:
             return hits
-        counts, rows, overlaps = kernels.matches_in_rows(packed_words(batch), table.words, unsure, m)
+        counts, rows, overlaps = kernels.matches_in_rows(packed_words(batch), table.kernel_table(), unsure, m)
         return batch_of(len(batch), [hits.counts, counts], [hits.ids, table.ids_of(rows)], [hits.overlaps, overlaps],
                         unique=True)
 
     def _nearest(self, q: Codes, k: int) -> Hits:
         table = self._table
         with PARALLEL_LOCK:
-            overlaps = kernels.overlaps_with_all(packed_words(q)[0], table.words, table.rows)
+            overlaps = kernels.overlaps_with_all(packed_words(q)[0], table.kernel_table(), table.rows)
         rows = kernels.top_k(overlaps, table.removed, k, self.bits)
         return Hits(table.ids_of(rows), overlaps[rows])
 
@@ -308,7 +315,7 @@ class Store(StoreBase):
         """
         with self._guard.mutating("compact"):
             table = self._table.compacted()
-            bank = self._bank.rebuilt(table.words, table.ids_of(np.arange(table.rows)))
+            bank = self._bank.rebuilt(table.kernel_table(), table.ids_of(np.arange(table.rows)), table.weights)
             with self._guard.writing():
                 self._bank, self._table = bank, table
                 self._local = threading.local()
@@ -410,7 +417,10 @@ class Store(StoreBase):
         return _persist.StoreState(
             bits=p.bits, threshold=p.threshold, sample_size=p.sample_size, detectors=p.detectors, seed=p.seed,
             block_span=self._bank.block_span, plan=None if self._plan is None else self._plan.to_dict(),
-            rows=n, next_id=t.next_id, removed_count=t.removed_count, words=t.words[:n], removed=t.removed[:n],
+            rows=n, next_id=t.next_id, removed_count=t.removed_count,
+            words=t.words[:n] if t.layout == "packed" else None, removed=t.removed[:n],
+            row_layout=t.layout, row_indptr=None if t.layout == "packed" else t.indptr[: n + 1],
+            row_indices=None if t.layout == "packed" else t.indices[: t.indptr[n]],
             row_ids=None if t.row_ids is None else t.row_ids[:n],
             block_lo=block_lo, block_hi=block_hi, block_indptr=block_indptr, postings=post,
         )
@@ -424,7 +434,8 @@ class Store(StoreBase):
             block_lo=state.block_lo, block_hi=state.block_hi, max_sample=state.max_sample,
             max_weight=int(state.weights.max()) if state.weights.shape[0] else 0,
         )
-        table = RowTable.from_arrays(state.bits, words=state.words, weights=state.weights, removed=state.removed,
+        table = RowTable.from_arrays(state.bits, words=state.words, indptr=state.row_indptr, indices=state.row_indices,
+                                     weights=state.weights, removed=state.removed,
                                      row_ids=state.row_ids, rows=state.rows, next_id=state.next_id,
                                      removed_count=state.removed_count)
         self = cls.__new__(cls)
@@ -455,7 +466,7 @@ class Store(StoreBase):
             self._counts.check(table)
             expected = None
             if deep and table.rows:
-                indptr, indices = table.indices()
+                indptr, indices = table.indices_of()
                 expected = self._bank.sample(indptr, indices, table.ids_of(np.arange(table.rows)))
             self._bank.check(expected)
 
