@@ -334,14 +334,24 @@ def check_index_rows(indptr, indices, bits):
     (not strictly ascending) for the first bad row.
     """
     for r in range(indptr.shape[0] - 1):
-        prev = -1
-        for p in range(indptr[r], indptr[r + 1]):
-            v = np.int64(indices[p])
-            if v >= bits:
-                return 1, r
-            if v <= prev:
-                return 2, r
-            prev = v
+        problem, _ = _ascending_below(indices, indptr[r], indptr[r + 1], bits)
+        if problem:
+            return problem, r
+    return 0, 0
+
+
+@inline_kernel
+def _ascending_below(values, start, end, limit):
+    """``(0, 0)`` if ``values[start:end]`` ascend strictly and stay below ``limit``;
+    else ``(1, p)`` (``values[p] >= limit``) or ``(2, p)`` (not ascending at ``p``)."""
+    prev = -1
+    for p in range(start, end):
+        v = np.int64(values[p])
+        if v >= limit:
+            return 1, p
+        if v <= prev:
+            return 2, p
+        prev = v
     return 0, 0
 
 
@@ -1041,14 +1051,9 @@ def _check_block(post, block_indptr, lo, size, table, weights, detectors, sample
     bits = block_indptr.shape[1] - 1
     for b in range(bits):
         start, end = block_indptr[k, b], block_indptr[k, b + 1]
-        prev = -1
-        for p in range(start, end):  # order and range first: the tiles rely on them
-            off = np.int64(post[p])
-            if off >= size:
-                return 1, p
-            if off <= prev:
-                return 2, p
-            prev = off
+        problem, where = _ascending_below(post, start, end, size)  # order and range first: the tiles rely on them
+        if problem:
+            return problem, where
         cursor[b] = start
     for tile in range(0, size, CHECK_TILE):
         tile_end = min(size, tile + CHECK_TILE)
