@@ -45,7 +45,7 @@ def _words_for(bits: int) -> int:
 
 
 def _check_bits(bits) -> int:
-    return validation.integer("bits", bits, minimum=1)
+    return validation.width(bits)
 
 
 def _binary_csr(csr):
@@ -740,6 +740,18 @@ def packed_table(words: np.ndarray) -> tuple:
 def index_table(indptr: np.ndarray, indices: np.ndarray, bits: int) -> tuple:
     """A kernel row table over sorted index rows (int64 pointers, ``rows + 1`` of them)."""
     return (np.zeros((0, _words_for(bits)), dtype=np.uint64), indptr, indices)
+
+
+def query_words(codes: Codes, table: tuple) -> np.ndarray:
+    """The batch's rows as the exact check against a kernel row table wants them.
+
+    A packed table ANDs with packed queries (:func:`packed_words`); an index
+    table merges with each query's sorted bits, so its queries get empty
+    rows and a wide query is never packed.
+    """
+    if table[1].shape[0] == 0:
+        return packed_words(codes)
+    return np.zeros((len(codes), 0), dtype=np.uint64)
 
 
 def adopt_words(words: np.ndarray, bits: int) -> Codes:

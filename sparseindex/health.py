@@ -47,7 +47,7 @@ import warnings
 import numpy as np
 
 from . import model, validation
-from .codes import Codes
+from .codes import MAX_EXPANDED_BYTES, Codes
 from .errors import SaturationWarning
 
 __all__ = ["Health", "FalseHitMeasurement", "StoreStats", "HealthMemo", "Watch", "STATUSES", "compute",
@@ -262,7 +262,10 @@ class StoreStats:
     ``Store.stats()`` takes it under the store's read lock (copies, no
     model work); a sharded store's is the field-wise sum of its shards'
     with the whole store's own counters. ``usage`` holds the live codes'
-    set-bit count per bit, ``weight_hist[w]`` the live codes of weight
+    set-bit counts: of bit ``b`` at ``usage[b]`` when ``usage_bits`` is None
+    (narrow stores), else of bit ``usage_bits[i]`` at ``usage[i]`` (wide
+    stores count only the bits in use; :meth:`per_bit_usage` expands them),
+    ``weight_hist[w]`` the live codes of weight
     ``w``; ``served`` the counters ``queries``, ``hits``, ``added`` and
     ``removed``; ``watch_false_hit``/``watch_warn_fraction`` what
     :meth:`Store.watch` set (None without a watch).
@@ -276,6 +279,7 @@ class StoreStats:
     plan: object
     items: int
     removed_pending: int
+    usage_bits: np.ndarray | None
     usage: np.ndarray
     weight_hist: np.ndarray
     memory_bytes: int
@@ -283,6 +287,17 @@ class StoreStats:
     measurement: "FalseHitMeasurement | None"
     watch_false_hit: float | None
     watch_warn_fraction: float | None
+
+    def per_bit_usage(self) -> np.ndarray:
+        """The set-bit count of every bit (``bits`` long); ``ValueError`` above ``MAX_EXPANDED_BYTES``."""
+        if self.usage_bits is None:
+            return self.usage
+        if 8 * self.bits > MAX_EXPANDED_BYTES:
+            raise ValueError(f"a per-bit table of {self.bits:,} bits would take {8 * self.bits:,} bytes, over "
+                             f"MAX_EXPANDED_BYTES={MAX_EXPANDED_BYTES:,}; use usage_bits and usage")
+        dense = np.zeros(self.bits, dtype=np.int64)
+        dense[self.usage_bits] = self.usage
+        return dense
 
     @property
     def churn(self) -> int:
@@ -296,6 +311,26 @@ class HealthMemo:
     def __init__(self):
         self.uniform = {}
         self.usage = None  # (churn at estimate, items, query_weight, (UsageFalseHits, shrinkage))
+
+
+def summed_usage(parts) -> tuple:
+    """``(usage_bits, usage)`` of several :class:`StoreStats` added together (a sharded store's)."""
+    if all(p.usage_bits is None for p in parts):
+        return None, summed_counts([p.usage for p in parts])
+    bits = [np.arange(p.usage.shape[0]) if p.usage_bits is None else p.usage_bits for p in parts]
+    used = np.unique(np.concatenate(bits)).astype(np.int64)
+    total = np.zeros(used.shape[0], dtype=np.int64)
+    for b, p in zip(bits, parts):
+        total[np.searchsorted(used, b)] += p.usage
+    return used, total
+
+
+def summed_counts(arrays) -> np.ndarray:
+    """Arrays of counts added position by position, the shorter ones zero-padded."""
+    out = np.zeros(max((a.shape[0] for a in arrays), default=0), dtype=np.int64)
+    for a in arrays:
+        out[: a.shape[0]] += a
+    return out
 
 
 def _weights(hist: np.ndarray):
@@ -358,7 +393,7 @@ def _usage_estimate(stats, samples, memo, q, refresh_fraction, force):
         if then_q == q and abs(churn - then) < max(1, refresh_fraction * max(items, then_items)):
             return churn - then, estimate
     codes = samples(USAGE_SAMPLE, seed=churn)
-    freqs, lam = usage_frequencies(usage, items)
+    freqs, lam = usage_frequencies(stats.per_bit_usage(), items)
     p = model.usage_bernoulli(freqs, q)
     estimate = model.usage_false_hits(p, codes, stats.threshold, q, items)
     memo.usage = (churn, items, q, (estimate, lam))
@@ -497,7 +532,8 @@ def measure_false_hits(report: Health, usage: np.ndarray, count_hits, queries=10
     """Random unrelated queries through ``count_hits``: the measured false-hit rate.
 
     ``report`` is the store's current :class:`Health`, ``usage`` its bit
-    usage (``StoreStats.usage``), ``count_hits(codes)`` the number of hits
+    usage per bit (``StoreStats.per_bit_usage()``; needed for ``source="usage"``
+    only), ``count_hits(codes)`` the number of hits
     of each query of a batch, not counted as served (the store supplies
     it). Queries go ``batch`` at a time. O(queries · query cost).
 

@@ -31,6 +31,8 @@ import numpy as np
 
 #: Seeds are drawn and accepted as 64-bit unsigned integers everywhere.
 SEED_LIMIT = 2**64
+#: Widest code accepted everywhere (construction, plan, files, CLI): bit indices fit uint32.
+MAX_BITS = 2**32
 
 
 def quoted(value, limit: int = 60) -> str:
@@ -70,6 +72,14 @@ def integer(name, value, *, minimum=None, maximum=None, what=None) -> int:
     if maximum is not None and value > maximum:
         raise ValueError(f"{_prefix(what)}{name}={int(value)} must be <= {maximum}")
     return int(value)
+
+
+def width(value, *, what=None, name="bits") -> int:
+    """A code width: an integer in 1..MAX_BITS."""
+    if is_integer(value) and value > MAX_BITS:
+        raise ValueError(f"{_prefix(what)}{name}={int(value)} is wider than the {MAX_BITS:,} bits (2**32) this "
+                         f"library supports")
+    return integer(name, value, minimum=1, what=what)
 
 
 def optional_integer(name, value, *, minimum=None, maximum=None, what=None):

@@ -64,13 +64,15 @@ def test_both_forms_hold_the_same_codes(batch, data):
 
 
 def test_wide_sparse_batches_use_the_narrowest_index_type_and_say_so():
-    for bits, dtype in [(5_000, np.uint16), (2**20, np.uint32), (2**33, np.uint64)]:
+    for bits, dtype in [(5_000, np.uint16), (2**20, np.uint32), (2**32, np.uint32)]:
         codes = Codes.from_indices([[0, bits - 1], [7]], bits)
         assert codes.layout == "sparse" and index_dtype(bits) == dtype
         assert codes.nbytes == 8 * 3 + 3 * np.dtype(dtype).itemsize + 8 * 2   # pointers + indices + weights
         assert "sparse" in repr(codes)
     dense = Codes.from_indices([list(range(0, 5_000, 2))], 5_000)   # 2,500 of 5,000 bits: packed is smaller
     assert dense.layout == "packed"
+    with pytest.raises(ValueError, match=r"bits=8589934592 is wider than the 4,294,967,296 bits"):
+        Codes.from_indices([[0]], 2**33)   # one width range everywhere: 2**32 at most
 
 
 def test_random_draws_the_same_codes_in_either_form():

@@ -122,3 +122,16 @@ def test_plan_store():
         assert number(gib) == pytest.approx(count * (8 * 64 + 2 * s + 5) / 2**30, abs=0.006)
         assert number(updates) == pytest.approx(weight * count * s / bits, rel=1e-2)
     assert "PlanError: false_hit=1e-09 at capacity=10,000,000 cannot be met" in out
+
+
+def test_feature_hashing():
+    out = run("feature_hashing.py", "--records", 3_000, "--edits", 150, "--seed", 4)
+    # reference: the script's own scipy.sparse product S @ Q^T, thresholded like the store
+    assert "store and scipy.sparse agree on every query: yes" in out
+    found, total = map(number, re.search(r"recall of edited records: [\d.]+ \(([\d,]+) of ([\d,]+)\)", out).groups())
+    assert total == 150 and found >= 147   # an edit keeps about 70% of a record's features, 3x the threshold
+    per_code, index_bytes = map(number, re.search(r"([\d,]+) bytes per code \(the set-bit indices alone take ([\d,]+)\)",
+                                                  out).groups())
+    assert "rows kept as sparse indices" in out
+    assert per_code < 8 * index_bytes   # far from the 131,072 bytes of a packed 2**20-bit row
+    assert "a hit is a lead for a person to confirm" in out

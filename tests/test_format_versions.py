@@ -169,3 +169,13 @@ def test_golden_bytes_of_the_current_wide_version(tmp_path):
     header = header_of(today)
     assert header["params"]["row_layout"] == "sparse"
     assert [s["name"] for s in header["sections"]][:2] == ["row_indptr", "row_indices"]
+    # from 1.3 a wide store's postings have one column per bit in use, not per bit of the width
+    names = [s["name"] for s in header["sections"]]
+    assert names.index("bit_columns") == names.index("block_indptr") - 1
+    mapped = header["counts"]["mapped_bits"]
+    # the map holds every bit of the codes the compaction kept (all but 2 and 9) and those added after
+    # it, the later-removed 44 included: it only grows until the next compaction
+    _, codes = wide_store_fixture(Store, Codes)
+    kept = [row for i, row in enumerate(codes.to_indices()) if i not in (2, 9)]
+    assert mapped == np.unique(np.concatenate(kept)).shape[0]
+    assert header["sections"][names.index("block_indptr")]["shape"][1] == mapped + 2

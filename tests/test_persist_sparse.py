@@ -42,12 +42,16 @@ def test_a_wide_store_round_trips_with_index_rows(tmp_path, mmap):
     assert loaded.row_layout == "sparse" and answers(loaded, codes[:50]) == answers(store, codes[:50])
     assert [list(loaded.nearest(q, 4)) for q in codes[:5].to_indices()] == \
         [list(store.nearest(q, 4)) for q in codes[:5].to_indices()]
-    # the rows in the file are the set bits, not the width (4-byte indices at this width); the per-bit
-    # block tables are still width-sized (the next step of the wide-codes work)
+    # the rows in the file are the set bits, not the width (4-byte indices at this width), and so are the
+    # block tables: one column per bit in use plus the spare one
     header, _ = _sections(path.read_bytes())
-    rows = {s["name"]: s["nbytes"] for s in header["sections"]}
-    assert "words" not in rows and rows["row_indices"] == 4 * int(store.stats().weight_hist @ np.arange(BITS + 1)
-                                                                 + 60 * store.removed_count)
+    rows = {s["name"]: s for s in header["sections"]}
+    hist = store.stats().weight_hist
+    assert "words" not in rows and rows["row_indices"]["nbytes"] == 4 * int(hist @ np.arange(hist.shape[0])
+                                                                           + 60 * store.removed_count)
+    in_use = np.unique(np.concatenate(codes.to_indices())).shape[0]
+    assert header["counts"]["mapped_bits"] == in_use < BITS
+    assert rows["block_indptr"]["shape"][1] == in_use + 2
 
 
 def _sections(data: bytes):
@@ -55,13 +59,12 @@ def _sections(data: bytes):
     return json.loads(data[32 : 32 + length]), length
 
 
-def _corrupted(store, name: str, change) -> bytes:
+def corrupted(store, name: str, change) -> bytes:
     """The store's file with section ``name``'s array changed by ``change``; CRCs written afresh by the writer."""
     state = store._state()
-    field = {"row_indices": "row_indices", "row_indptr": "row_indptr"}[name]
-    array = getattr(state, field).copy()
+    array = getattr(state, name).copy()
     change(array)
-    setattr(state, field, array)
+    setattr(state, name, array)
     return _persist.dumps(state)
 
 
@@ -90,7 +93,7 @@ def _descending_pointer(a):
 def test_hostile_index_rows_are_refused_before_any_kernel_runs(tmp_path, section, change, message):
     store, _ = wide_store()
     bad = tmp_path / "bad.sidx"
-    bad.write_bytes(_corrupted(store, section, change))
+    bad.write_bytes(corrupted(store, section, change))
     with pytest.raises(StoreFormatError, match=message) as info:
         Store.load(bad)
     assert info.value.section == section
@@ -103,6 +106,6 @@ def test_pointers_that_do_not_cover_the_indices_are_refused(tmp_path):
         a[-1] -= 1
 
     bad = tmp_path / "bad.sidx"
-    bad.write_bytes(_corrupted(store, "row_indptr", shift_last))
+    bad.write_bytes(corrupted(store, "row_indptr", shift_last))
     with pytest.raises(StoreFormatError, match="pointers run"):
         Store.load(bad)

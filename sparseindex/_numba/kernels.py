@@ -149,16 +149,30 @@ def _row_overlap(a, b):
 
 
 @inline_kernel
-def _stored_overlap(table, r, q_words):
-    """Exact overlap of stored row ``r`` with a packed query."""
+def _stored_overlap(table, r, q_words, q_bits):
+    """Exact overlap of stored row ``r`` with a query.
+
+    Packed rows AND with the packed query ``q_words``; index rows are merged
+    with the query's sorted set bits ``q_bits``, so a wide query is never
+    packed (its packed form would be as wide as the codes).
+    """
     words, indptr, indices = table
     if indptr.shape[0] == 0:
         return _row_overlap(words[r], q_words)
     total = 0
-    for p in range(indptr[r], indptr[r + 1]):
-        i = np.int64(indices[p])
-        if (q_words[i >> 6] >> np.uint64(i & 63)) & np.uint64(1):
+    p, end = indptr[r], indptr[r + 1]
+    t, n_q = 0, q_bits.shape[0]
+    while p < end and t < n_q:
+        a = np.int64(indices[p])
+        b = q_bits[t]
+        if a == b:
             total += 1
+            p += 1
+            t += 1
+        elif a < b:
+            p += 1
+        else:
+            t += 1
     return total
 
 
@@ -743,7 +757,7 @@ def _fired_rows(fired, n_fired, detectors):
 
 
 @kernel
-def _verified(rows, removed, table, q_words, min_overlap):
+def _verified(rows, removed, table, q_words, q_bits, min_overlap):
     """The live ``rows`` whose exact overlap with the query is >= min_overlap, with it."""
     out_rows = np.empty(rows.shape[0], dtype=np.int64)
     out_ov = np.empty(rows.shape[0], dtype=np.int64)
@@ -756,7 +770,7 @@ def _verified(rows, removed, table, q_words, min_overlap):
         r = rows[i]
         if removed[r]:
             continue
-        ov = _stored_overlap(table, r, q_words)
+        ov = _stored_overlap(table, r, q_words, q_bits)
         if ov >= min_overlap:
             out_rows[n] = r
             out_ov[n] = ov
@@ -820,27 +834,30 @@ def _prefix_plan(q_bits, bit_postings, n_detectors, threshold, whole, verify_cos
 
 
 @kernel
-def _answer(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, table,
-            min_overlap, fired, bit_postings, whole, verify_cost):
+def _answer(q_cols, q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed,
+            table, min_overlap, fired, bit_postings, whole, verify_cost):
     """Rows hit by one query with their overlaps; a larger ``fired`` if needed.
 
-    The scan follows :func:`_prefix_plan`; for whole-code detectors the
-    exact check also demands ``threshold`` (firing is then overlap >= it).
+    ``q_cols`` are the query's postings columns (its bits, or their places
+    in a bank's column map), ``q_bits``/``q_words`` the query for the exact
+    check (see :func:`_stored_overlap`). The scan follows
+    :func:`_prefix_plan`; for whole-code detectors the exact check also
+    demands ``threshold`` (firing is then overlap >= it).
     """
     n_det = block_hi[block_hi.shape[0] - 1] if block_hi.shape[0] else 0
-    scan_bits, scan_threshold = _prefix_plan(q_bits, bit_postings, n_det, threshold, whole, verify_cost)
+    scan_bits, scan_threshold = _prefix_plan(q_cols, bit_postings, n_det, threshold, whole, verify_cost)
     n_fired = _scan_count(scan_bits, post, block_indptr, block_lo, block_hi, counters, scan_threshold, fired)
     if n_fired > fired.shape[0]:
         fired = np.empty(2 * n_fired, dtype=np.int64)
         n_fired = _scan_count(scan_bits, post, block_indptr, block_lo, block_hi, counters, scan_threshold, fired)
     need = max(min_overlap, threshold) if whole else min_overlap
-    rows, overlaps = _verified(_fired_rows(fired, n_fired, detectors), removed, table, q_words, need)
+    rows, overlaps = _verified(_fired_rows(fired, n_fired, detectors), removed, table, q_words, q_bits, need)
     return rows, overlaps, fired
 
 
 @kernel
-def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, table,
-              min_overlap, bit_postings, whole, verify_cost):
+def query_one(q_cols, q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed,
+              table, min_overlap, bit_postings, whole, verify_cost):
     """One query: rows with a firing detector and overlap >= min_overlap.
 
     ``counters`` (at least one block span long) must be zero on entry and
@@ -850,15 +867,15 @@ def query_one(q_bits, q_words, post, block_indptr, block_lo, block_hi, counters,
     """
     fired = np.empty(FIRED_ROOM, dtype=np.int64)
     rows, overlaps, fired = _answer(
-        q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, table,
+        q_cols, q_bits, q_words, post, block_indptr, block_lo, block_hi, counters, threshold, detectors, removed, table,
         min_overlap, fired, bit_postings, whole, verify_cost,
     )
     return rows, overlaps
 
 
 @parallel_kernel
-def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, chunk_counters, threshold, detectors,
-                       removed, table, min_overlap, bit_postings, whole, verify_cost):
+def query_one_parallel(q_cols, q_bits, q_words, post, block_indptr, block_lo, block_hi, chunk_counters, threshold,
+                       detectors, removed, table, min_overlap, bit_postings, whole, verify_cost):
     """:func:`query_one` with the blocks split into chunks scanned in parallel.
 
     ``chunk_counters`` holds one zeroed counter row (at least one block span
@@ -870,7 +887,7 @@ def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, 
     n_chunks = chunk_counters.shape[0]
     n_blocks = block_lo.shape[0]
     n_det = block_hi[n_blocks - 1] if n_blocks else 0
-    scan_bits, scan_threshold = _prefix_plan(q_bits, bit_postings, n_det, threshold, whole, verify_cost)
+    scan_bits, scan_threshold = _prefix_plan(q_cols, bit_postings, n_det, threshold, whole, verify_cost)
     chunk_lo = np.empty(n_chunks, dtype=np.int64)
     for c in range(n_chunks):
         chunk_lo[c] = c * n_blocks // n_chunks
@@ -894,12 +911,13 @@ def query_one_parallel(q_bits, q_words, post, block_indptr, block_lo, block_hi, 
             gathered[n] = fired[c * room + i]
             n += 1
     need = max(min_overlap, threshold) if whole else min_overlap
-    return _verified(_fired_rows(gathered, n, detectors), removed, table, q_words, need)
+    return _verified(_fired_rows(gathered, n, detectors), removed, table, q_words, q_bits, need)
 
 
 @parallel_kernel
 def query_batch(
     q_indptr,
+    q_cols,
     q_bits,
     q_words,
     post,
@@ -942,6 +960,7 @@ def query_batch(
         i = chunk_lo[c]
         while i < chunk_hi[c]:
             rows, overlaps, fired = _answer(
+                q_cols[q_indptr[i] : q_indptr[i + 1]],
                 q_bits[q_indptr[i] : q_indptr[i + 1]],
                 q_words[i],
                 post,
@@ -972,20 +991,44 @@ def query_batch(
 
 
 @parallel_kernel
-def overlaps_with_all(q_words, table, n_rows):
-    """Exact overlap of one packed query with each of the first n_rows rows of a row table."""
+def overlaps_with_all(q_words, q_bits, table, n_rows):
+    """Exact overlap of one query with each of the first n_rows rows of a row table."""
     out = np.empty(n_rows, dtype=np.int64)
     for r in prange(n_rows):
-        out[r] = _stored_overlap(table, r, q_words)
+        out[r] = _stored_overlap(table, r, q_words, q_bits)
     return out
 
 
 @kernel
-def overlaps_with_rows(q_words, table, rows):
-    """Exact overlap of one packed query with the given rows of a row table."""
+def overlaps_with_rows(q_words, q_bits, table, rows):
+    """Exact overlap of one query with the given rows of a row table."""
     out = np.empty(rows.shape[0], dtype=np.int64)
     for t in range(rows.shape[0]):
-        out[t] = _stored_overlap(table, rows[t], q_words)
+        out[t] = _stored_overlap(table, rows[t], q_words, q_bits)
+    return out
+
+
+@parallel_kernel
+def overlaps_from_postings(q_cols, post, block_indptr, block_lo, detectors, n_rows):
+    """Exact overlap of one query with every row, counted from the postings of its columns.
+
+    Valid only when every detector samples its whole code: then detector
+    ``row * detectors`` alone holds all of its row's bits, and counting its
+    postings over the query's columns is the overlap. Blocks run in
+    parallel (each owns its rows' counts). O(query postings + rows).
+    """
+    out = np.zeros(n_rows, dtype=np.int64)
+    n_blocks = block_lo.shape[0]
+    for k in prange(n_blocks):
+        lo = block_lo[k]
+        for t in range(q_cols.shape[0]):
+            c = q_cols[t]
+            for p in range(block_indptr[k, c], block_indptr[k, c + 1]):
+                d = lo + np.int64(post[p])
+                if detectors == 1:
+                    out[d] += 1
+                elif d % detectors == 0:
+                    out[d // detectors] += 1
     return out
 
 
@@ -1046,7 +1089,7 @@ CHECK_TILE = 2048
 
 
 @inline_kernel
-def _check_block(post, block_indptr, lo, size, table, weights, detectors, sample_size, k, counts, cursor):
+def _check_block(post, block_indptr, columns, lo, size, table, weights, detectors, sample_size, k, counts, cursor):
     """``check_postings`` for block ``k``: (problem, where), see there."""
     bits = block_indptr.shape[1] - 1
     for b in range(bits):
@@ -1065,7 +1108,7 @@ def _check_block(post, block_indptr, lo, size, table, weights, detectors, sample
                 if off >= tile_end:
                     break
                 row = lo + off if detectors == 1 else (lo + off) // detectors
-                if not _stored_has(table, row, b):
+                if not _stored_has(table, row, b if columns.shape[0] == 0 else columns[b]):
                     return 3, p
                 counts[off] += 1
                 p += 1
@@ -1079,12 +1122,14 @@ def _check_block(post, block_indptr, lo, size, table, weights, detectors, sample
 
 
 @parallel_kernel
-def check_postings(post, block_indptr, block_lo, block_hi, table, weights, detectors, sample_size):
+def check_postings(post, block_indptr, columns, block_lo, block_hi, table, weights, detectors, sample_size):
     """Check postings read from a file against the codes they index.
 
     The caller has already checked the *shape* of the tables (``block_indptr``
     monotone and inside ``post``; blocks consecutive, each at most one span,
-    together covering ``rows * detectors`` detectors). This kernel reads only
+    together covering ``rows * detectors`` detectors; a column map
+    ``columns`` ascending and in range, its spare last column empty; empty
+    ``columns``: column b is bit b). This kernel reads only
     and checks, per block (blocks in parallel): every offset lies inside its
     block, the postings of each bit strictly ascend, the bit is set in the
     code that owns the detector, and every detector holds exactly
@@ -1106,8 +1151,8 @@ def check_postings(post, block_indptr, block_lo, block_hi, table, weights, detec
         size = block_hi[k] - lo
         counts = np.zeros(size, dtype=np.int32)
         cursor = np.empty(bits, dtype=np.int64)
-        problem, where = _check_block(post, block_indptr, lo, size, table, weights, detectors, sample_size, k, counts,
-                                      cursor)
+        problem, where = _check_block(post, block_indptr, columns, lo, size, table, weights, detectors, sample_size,
+                                      k, counts, cursor)
         problems[k] = problem
         wheres[k] = where
     for k in range(n_blocks):
@@ -1153,19 +1198,20 @@ def bit_usage(words, rows, skip):
 
 
 @kernel
-def matches_in_rows(q_words, table, rows, min_overlap):
+def matches_in_rows(q_indptr, q_bits, q_words, table, rows, min_overlap):
     """Every (query, row) with overlap >= min_overlap, rows taken from ``rows``.
 
-    ``q_words`` holds one packed query per row. Returns ``(counts, hit_rows,
+    Query ``i`` is ``q_words[i]`` (packed) and ``q_bits[q_indptr[i]:q_indptr[i + 1]]``
+    (its sorted bits); see :func:`_stored_overlap`. Returns ``(counts, hit_rows,
     overlaps)``: query ``i``'s matches are the next ``counts[i]`` entries,
     in the order of ``rows``. Two passes (count, then fill). O(queries *
     len(rows) * words).
     """
-    n_q = q_words.shape[0]
+    n_q = q_indptr.shape[0] - 1
     counts = np.zeros(n_q, dtype=np.int64)
     for i in range(n_q):
         for t in range(rows.shape[0]):
-            if _stored_overlap(table, rows[t], q_words[i]) >= min_overlap:
+            if _stored_overlap(table, rows[t], q_words[i], q_bits[q_indptr[i] : q_indptr[i + 1]]) >= min_overlap:
                 counts[i] += 1
     total = 0
     for i in range(n_q):
@@ -1175,7 +1221,7 @@ def matches_in_rows(q_words, table, rows, min_overlap):
     n = 0
     for i in range(n_q):
         for t in range(rows.shape[0]):
-            ov = _stored_overlap(table, rows[t], q_words[i])
+            ov = _stored_overlap(table, rows[t], q_words[i], q_bits[q_indptr[i] : q_indptr[i + 1]])
             if ov >= min_overlap:
                 hit_rows[n] = rows[t]
                 overlaps[n] = ov

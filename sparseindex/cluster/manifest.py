@@ -13,6 +13,7 @@ import os
 import re
 import tempfile
 
+from .. import validation
 from ..errors import StoreFormatError
 from ..model.planner import Plan
 from ..store import format as _persist
@@ -161,9 +162,9 @@ def read_manifest(path: str) -> dict:
     if not isinstance(params, dict) or set(params) != PARAM_KEYS:
         fail(f"params must hold exactly {sorted(PARAM_KEYS)}")
     for key in ("bits", "threshold", "detectors"):
-        whole(params[key], f"params.{key}", 1, 2**24)
+        whole(params[key], f"params.{key}", 1, validation.MAX_BITS)
     if params["sample_size"] is not None:
-        whole(params["sample_size"], "params.sample_size", 1, 2**24)
+        whole(params["sample_size"], "params.sample_size", 1, validation.MAX_BITS)
     whole(params["seed"], "params.seed", 0, 2**64 - 1)
     files = doc["files"]
     if not isinstance(files, list) or len(files) != shards:

@@ -9,7 +9,7 @@ from contextlib import contextmanager
 
 import numpy as np
 
-from .. import validation
+from .. import health, validation
 from ..codes import adopt_words, packed_words
 from ..errors import StoreFormatError
 from ..model.planner import plan as make_plan
@@ -154,9 +154,8 @@ class ShardedStore(StoreBase):
     def _figures(self):
         with self._reading("stats"):
             parts = self._fan("stats")
-        return (sum(s.items for s in parts), sum(s.removed_pending for s in parts),
-                np.sum([s.usage for s in parts], axis=0), np.sum([s.weight_hist for s in parts], axis=0),
-                sum(s.memory_bytes for s in parts))
+        return (sum(s.items for s in parts), sum(s.removed_pending for s in parts), health.summed_usage(parts),
+                health.summed_counts([s.weight_hist for s in parts]), sum(s.memory_bytes for s in parts))
 
     # -- primitives of the contract: fan out, merge ------------------------
 

@@ -30,6 +30,7 @@ import numbers
 import numpy as np
 
 from ..errors import PlanError
+from .. import validation
 from ..validation import quoted
 from . import hypergeometric as _model
 
@@ -447,6 +448,8 @@ def plan(bits, weight, *, false_hit, capacity, noise=0.0, recall=0.999,
 def _checked_targets(bits, weight, false_hit, capacity, noise, recall, max_detectors):
     """The planner's arguments as plain numbers, or TypeError / ValueError quoting the bad one."""
     n = _scalar_int("bits", bits)
+    if n > validation.MAX_BITS:
+        validation.width(n, what="plan")
     a = _scalar_int("weight", weight)
     F = _scalar_real("false_hit", false_hit)
     M = _scalar_int("capacity", capacity)

@@ -211,7 +211,7 @@ def _as_batch(codes, bits) -> Codes:
     import scipy.sparse as sp
 
     if bits is not None:
-        bits = validation.integer("bits", bits, minimum=1, what="label_near_duplicates")
+        bits = validation.width(bits, what="label_near_duplicates")
         bits = int(bits)
     if bits is None:
         if isinstance(codes, Codes):

@@ -16,6 +16,15 @@ filling the newest block merges into the one before whenever it is at least
 half its size, so every posting is rewritten O(log span) times at most.
 ``compact`` rebuilds the postings of the surviving rows from scratch.
 
+Postings are indexed by *column*. A narrow bank's column ``b`` is bit ``b``.
+A wide bank (above ``COLUMN_MAP_MIN_BITS``) keeps a *column map*: the
+sorted bits that any stored code sets, column ``c`` being bit
+``columns[c]``, plus one spare last column that is always empty and stands
+for every bit no code sets. Its per-block tables are then sized by the
+bits in use, not by the width: a 2^32-bit bank holding one code costs
+kilobytes. The map only grows (``compact`` rebuilds it); a query maps its
+bits with one binary search each.
+
 This layer knows nothing of ids, codes or the store; it sees rows only.
 """
 
@@ -24,6 +33,7 @@ from __future__ import annotations
 import numpy as np
 
 from .._numba import kernels as _kernels
+from ..codes import index_dtype
 from .._numba.config import PARALLEL_LOCK, PARALLEL_SINGLE_QUERY, thread_count
 
 #: Detector ids are int32 in results and int64 in kernels; keep them int32-sized.
@@ -32,6 +42,13 @@ MAX_DETECTORS_TOTAL = 2**31 - 1
 #: Detectors per postings block: offsets within a block fit uint16, and a
 #: block's counters (64 KiB of uint8) stay in the second-level cache.
 BLOCK_SPAN = 2**16
+
+#: Widths above which a bank maps used bits to columns (below it, a
+#: table per bit is small and saves the query's binary searches).
+COLUMN_MAP_MIN_BITS = 4096
+
+#: An empty column map, and the "no map" marker kernels take.
+NO_COLUMNS = np.zeros(0, dtype=np.int64)
 
 #: A single query splits its blocks among threads from this many blocks up.
 PARALLEL_MIN_BLOCKS = 2
@@ -63,6 +80,9 @@ class DetectorBank:
     block_span : int
         Detectors per postings block (at most 65,536; smaller in tests to
         exercise many blocks).
+    column_map : bool, optional
+        Map used bits to columns (see the module notes); default: above
+        ``COLUMN_MAP_MIN_BITS`` bits.
 
     Examples
     --------
@@ -75,9 +95,12 @@ class DetectorBank:
     (3, 1)
     """
 
-    def __init__(self, bits, threshold, sample_size, detectors, seed, block_span=BLOCK_SPAN):
+    def __init__(self, bits, threshold, sample_size, detectors, seed, block_span=BLOCK_SPAN, column_map=None):
         if not 1 <= block_span <= 2**16:
             raise ValueError(f"block_span={block_span} must be in 1..65536")
+        #: the column map (ascending bits), or None: column b is bit b
+        self.columns = (NO_COLUMNS if bits > COLUMN_MAP_MIN_BITS else None) if column_map is None else (
+            NO_COLUMNS if column_map else None)
         self.bits = bits
         self.threshold = threshold
         self.sample_size = sample_size
@@ -87,12 +110,12 @@ class DetectorBank:
         self.rows = 0
         self._post = np.zeros(0, dtype=np.uint16)  # buffer; room >= used
         self._used = 0
-        self._block_indptr = np.zeros((0, bits + 1), dtype=np.int64)
+        self._block_indptr = np.zeros((0, self.column_count + 1), dtype=np.int64)
         self._block_lo = np.zeros(0, dtype=np.int64)
         self._block_hi = np.zeros(0, dtype=np.int64)
         self._max_sample = 0  # largest sample of any detector (sizes the counters)
         self._max_weight = 0  # heaviest code ever appended (says whether samples are whole codes)
-        self._bit_postings = np.zeros(bits, dtype=np.int64)  # postings of each bit over all blocks
+        self._bit_postings = np.zeros(self.column_count, dtype=np.int64)  # postings of each column over all blocks
         #: cost of a candidate check in postings (``float("inf")``: never lower the scan threshold)
         self.verify_cost = VERIFY_COST_POSTINGS
 
@@ -137,6 +160,8 @@ class DetectorBank:
             )
         sample_size = -1 if self.sample_size is None else self.sample_size
         code_ids = np.asarray(code_ids, dtype=np.int64)
+        columns, table, block_indptr_before, bit_postings_before = self._mapped(table, weights)
+        n_cols = self.column_count if columns is None else columns.shape[0] + 1
         take = weights if sample_size < 0 else np.minimum(weights, sample_size)
         chunk_rows = np.arange(0, rows + APPEND_CHUNK_ROWS, APPEND_CHUNK_ROWS, dtype=np.int64)
         chunk_rows[-1] = rows
@@ -156,15 +181,16 @@ class DetectorBank:
             buffer = np.empty(room, dtype=np.uint16)
             buffer[: self._used] = self._post[: self._used]
         total_blocks = int(n_blocks.sum())
-        new_indptr = np.empty((total_blocks, self.bits + 1), dtype=np.int64)
+        new_indptr = np.empty((total_blocks, n_cols + 1), dtype=np.int64)
         new_lo = np.empty(total_blocks, dtype=np.int64)
         new_hi = np.empty(total_blocks, dtype=np.int64)
-        usage = np.zeros((chunk_rows.shape[0] - 1, self.bits), dtype=np.int64)
-        weight_hist = np.zeros((chunk_rows.shape[0] - 1, self.bits + 1), dtype=np.int64)
+        heaviest = int(weights.max()) if rows else 0
+        usage = np.zeros((chunk_rows.shape[0] - 1, n_cols), dtype=np.int64)
+        weight_hist = np.zeros((chunk_rows.shape[0] - 1, heaviest + 1), dtype=np.int64)
         max_sample = self._max_sample
-        max_weight = max(self._max_weight, int(weights.max())) if rows else self._max_weight
+        max_weight = max(self._max_weight, heaviest)
         if rows:
-            args = (table, code_ids, self.rows, self.detectors, sample_size, np.uint64(self.seed), self.bits,
+            args = (table, code_ids, self.rows, self.detectors, sample_size, np.uint64(self.seed), n_cols,
                     self.block_span, chunk_rows, buffer, post_starts, new_indptr, new_lo, new_hi, block_starts,
                     usage, weight_hist, count_usage)
             if chunk_rows.shape[0] > 2:
@@ -173,12 +199,44 @@ class DetectorBank:
             else:  # one chunk: starting the thread team would cost more than the work
                 biggest = _kernels.build_blocks_serial(*args)
             max_sample = max(max_sample, int(biggest.max()))
-        block_indptr = np.concatenate([self._block_indptr, new_indptr])
+        block_indptr = np.concatenate([block_indptr_before, new_indptr])
         block_lo = np.concatenate([self._block_lo, new_lo])
         block_hi = np.concatenate([self._block_hi, new_hi])
-        bit_postings = self._bit_postings + np.diff(new_indptr, axis=1).sum(axis=0)
+        bit_postings = bit_postings_before + np.diff(new_indptr, axis=1).sum(axis=0)
+        usage = usage.sum(axis=0)
+        used_bits = None if columns is None else columns
+        if columns is not None:
+            usage = usage[:-1]  # the spare column counts nothing
         return PendingAppend(self.rows, rows, buffer, block_indptr, block_lo, block_hi, need, max_sample,
-                             usage.sum(axis=0), weight_hist.sum(axis=0), max_weight, bit_postings)
+                             (used_bits, usage), weight_hist.sum(axis=0), max_weight, bit_postings, columns)
+
+    def _mapped(self, table: tuple, weights: np.ndarray):
+        """``(columns, table, block_indptr, bit_postings)`` for an append of ``table``'s rows.
+
+        Without a column map: the bank's own. With one: the map grown by
+        the batch's new bits, the batch as a table of columns (each row in
+        its bit order, which the column order keeps, so the samples are
+        those of the bits), and the existing tables re-indexed onto the
+        grown map: a new column starts where the next old one did, so its
+        runs are empty. New arrays only; the bank is not changed.
+        """
+        if self.columns is None:
+            return None, table, self._block_indptr, self._bit_postings
+        words, indptr, indices = table
+        if indptr.shape[0] == 0:
+            indptr, indices = _kernels.unpack_indices(words, np.asarray(weights, dtype=np.int64))
+        old = self.columns
+        seen = np.unique(indices).astype(np.int64)
+        grown = old if np.isin(seen, old, assume_unique=True).all() else np.union1d(old, seen)
+        cols = np.searchsorted(grown, indices).astype(index_dtype(grown.shape[0] + 1))
+        col_table = (np.zeros((0, 1), dtype=np.uint64), indptr, cols)
+        if grown is old:
+            return old, col_table, self._block_indptr, self._bit_postings
+        bi = self._block_indptr
+        start_of = np.concatenate([np.searchsorted(old, grown), [old.shape[0] + 1, old.shape[0] + 1]])
+        bit_postings = np.zeros(grown.shape[0] + 1, dtype=np.int64)
+        bit_postings[np.searchsorted(grown, old)] = self._bit_postings[:-1]
+        return grown, col_table, bi[:, start_of], bit_postings
 
     def commit_append(self, pending: "PendingAppend") -> None:
         """Make a prepared append visible (hold the store's write lock).
@@ -194,34 +252,53 @@ class DetectorBank:
         self.rows += pending.rows
         self._max_sample = pending.max_sample
         self._max_weight, self._bit_postings = pending.max_weight, pending.bit_postings
+        if pending.columns is not None:
+            self.columns = pending.columns
         self._merge_blocks()
 
     @classmethod
     def from_arrays(cls, bits, threshold, sample_size, detectors, seed, block_span, *, rows, postings, block_indptr,
-                    block_lo, block_hi, max_sample, max_weight) -> "DetectorBank":
+                    block_lo, block_hi, max_sample, max_weight, columns=None) -> "DetectorBank":
         """A bank over arrays that were validated elsewhere (a loaded file).
 
         The arrays are adopted, not copied: they may be memory-mapped.
-        ``max_weight`` is the heaviest stored code's weight.
+        ``max_weight`` is the heaviest stored code's weight; ``columns`` the
+        column map (int64, ascending), or None for none.
         """
-        bank = cls(bits, threshold, sample_size, detectors, seed, block_span)
-        bank.restore(rows, postings, block_indptr, block_lo, block_hi, max_sample, max_weight)
+        bank = cls(bits, threshold, sample_size, detectors, seed, block_span, column_map=columns is not None)
+        bank.restore(rows, postings, block_indptr, block_lo, block_hi, max_sample, max_weight, columns)
         return bank
 
-    def restore(self, rows, postings, block_indptr, block_lo, block_hi, max_sample, max_weight) -> None:
+    def restore(self, rows, postings, block_indptr, block_lo, block_hi, max_sample, max_weight, columns=None) -> None:
         """Adopt the arrays of :meth:`from_arrays` into this (empty) bank."""
+        self.columns = columns
         self.rows = rows
         self._post = postings
         self._used = postings.shape[0]
         self._block_indptr, self._block_lo, self._block_hi = block_indptr, block_lo, block_hi
         self._max_sample = max_sample
         self._max_weight = max_weight
-        if block_lo.shape[0]:
-            self._bit_postings = np.diff(block_indptr, axis=1).sum(axis=0)
+        self._bit_postings = (np.diff(block_indptr, axis=1).sum(axis=0) if block_lo.shape[0]
+                              else np.zeros(self.column_count, dtype=np.int64))
 
     def arrays(self):
-        """``(postings, block_indptr, block_lo, block_hi)``, used part only (views)."""
-        return self._post[: self._used], self._block_indptr, self._block_lo, self._block_hi
+        """``(postings, block_indptr, block_lo, block_hi, columns)``, used part only (views; columns may be None)."""
+        return self._post[: self._used], self._block_indptr, self._block_lo, self._block_hi, self.columns
+
+    @property
+    def column_count(self) -> int:
+        """Columns of the postings tables: the width, or the mapped bits plus the spare column."""
+        return self.bits if self.columns is None else self.columns.shape[0] + 1
+
+    def query_columns(self, q_bits: np.ndarray) -> np.ndarray:
+        """The postings columns of a query's sorted bits (int64); bits no code sets go to the spare column."""
+        if self.columns is None:
+            return q_bits
+        at = np.searchsorted(self.columns, q_bits)
+        known = at < self.columns.shape[0]
+        known[known] = self.columns[at[known]] == q_bits[known]
+        at[~known] = self.columns.shape[0]
+        return at
 
     def _merge_blocks(self) -> None:
         """Keep few blocks: one per full span, O(log) in the span still filling.
@@ -269,7 +346,8 @@ class DetectorBank:
 
     def rebuilt(self, table: tuple, code_ids: np.ndarray, weights: np.ndarray) -> "DetectorBank":
         """A new bank holding exactly these rows (used by compaction)."""
-        fresh = DetectorBank(self.bits, self.threshold, self.sample_size, self.detectors, self.seed, self.block_span)
+        fresh = DetectorBank(self.bits, self.threshold, self.sample_size, self.detectors, self.seed, self.block_span,
+                             column_map=self.columns is not None)
         fresh.verify_cost = self.verify_cost
         if weights.shape[0]:
             fresh.append(table, code_ids, weights)
@@ -289,7 +367,8 @@ class DetectorBank:
     @property
     def nbytes(self) -> int:
         """Bytes held by the postings buffer and block tables."""
-        return self._post.nbytes + self._block_indptr.nbytes + self._block_lo.nbytes + self._block_hi.nbytes
+        total = self._post.nbytes + self._block_indptr.nbytes + self._block_lo.nbytes + self._block_hi.nbytes
+        return total + self._bit_postings.nbytes + (0 if self.columns is None else self.columns.nbytes)
 
     @property
     def max_weight(self) -> int:
@@ -327,6 +406,9 @@ class DetectorBank:
     def scan_one(self, q_bits, q_words, table, removed, min_overlap, counters):
         """Rows hit by one query, with their exact overlaps (kernel ``query_one``).
 
+        ``q_bits`` are the query's sorted set bits; ``q_words`` its packed
+        row for a packed ``table`` (for an index table, an empty row: the
+        exact check merges with ``q_bits``).
         ``counters`` comes from :meth:`new_counters` and is returned zeroed.
         O(postings of the query's bits + hits * words per code). With more
         than one block and more than one thread, the blocks are split among
@@ -334,6 +416,7 @@ class DetectorBank:
         thread is in a parallel kernel already, in which case this one scans
         serially rather than wait.
         """
+        q_cols = self.query_columns(q_bits)
         postings = (self._post, self._block_indptr, self._block_lo, self._block_hi)
         rest = (self.threshold, self.detectors, removed, table, min_overlap, self._bit_postings, self.whole_codes,
                 self.verify_cost)
@@ -347,13 +430,20 @@ class DetectorBank:
             try:
                 chunk_counters = self._chunk_counters(min(self.block_count, threads))
                 try:
-                    return _kernels.query_one_parallel(q_bits, q_words, *postings, chunk_counters, *rest)
+                    return _kernels.query_one_parallel(q_cols, q_bits, q_words, *postings, chunk_counters, *rest)
                 except BaseException:
                     _CHUNK_COUNTERS.clear()  # a scan cut short may leave counts behind
                     raise
             finally:
                 PARALLEL_LOCK.release()
-        return _kernels.query_one(q_bits, q_words, *postings, counters, *rest)
+        return _kernels.query_one(q_cols, q_bits, q_words, *postings, counters, *rest)
+
+    def overlaps(self, q_bits) -> np.ndarray:
+        """Exact overlap of one query (sorted bits) with every row, from the postings (kernel
+        ``overlaps_from_postings``); only when :attr:`whole_codes`. O(query postings + rows)."""
+        with PARALLEL_LOCK:
+            return _kernels.overlaps_from_postings(self.query_columns(q_bits), self._post, self._block_indptr,
+                                                   self._block_lo, self.detectors, self.rows)
 
     def scan_many(self, q_indptr, q_bits, q_words, table, removed, min_overlap):
         """Rows hit by each of many queries, in parallel (kernel ``query_batch``).
@@ -366,6 +456,7 @@ class DetectorBank:
             empty = np.zeros(0, dtype=np.int64)
             return empty, empty, empty
         counter_like = self.new_counters()
+        q_cols = self.query_columns(q_bits)
         tasks = max(1, min(n_queries, 4 * thread_count()))
         pending = [(0, n_queries)]
         per_query = 8  # slab room per query; grows when a slab fills up
@@ -383,6 +474,7 @@ class DetectorBank:
             with PARALLEL_LOCK:
                 done = _kernels.query_batch(
                     q_indptr,
+                    q_cols,
                     q_bits,
                     q_words,
                     self._post,
@@ -423,8 +515,9 @@ class DetectorBank:
 
     def postings_of(self, bit: int) -> np.ndarray:
         """All detector ids that sampled ``bit`` (across blocks, ascending)."""
+        c = int(self.query_columns(np.array([bit], dtype=np.int64))[0])
         parts = [
-            self._block_lo[k] + self._post[self._block_indptr[k, bit] : self._block_indptr[k, bit + 1]].astype(np.int64)
+            self._block_lo[k] + self._post[self._block_indptr[k, c] : self._block_indptr[k, c + 1]].astype(np.int64)
             for k in range(self.block_count)
         ]
         return np.concatenate(parts) if parts else np.zeros(0, dtype=np.int64)
@@ -442,7 +535,12 @@ class DetectorBank:
             f"lo={lo[:6].tolist()} hi={hi[:6].tolist()}"
         )
         span = self.block_span
-        assert bi.ndim == 2 and bi.shape[1] == self.bits + 1 and bi.shape[0] == lo.shape[0] == hi.shape[0], state
+        assert bi.ndim == 2 and bi.shape[1] == self.column_count + 1 and bi.shape[0] == lo.shape[0] == hi.shape[0], state
+        if self.columns is not None:
+            cols = self.columns
+            assert cols.dtype == np.int64 and np.all(np.diff(cols) > 0), f"column map not ascending: {state}"
+            assert cols.size == 0 or (cols[0] >= 0 and cols[-1] < self.bits), f"column map out of range: {state}"
+            assert np.all(bi[:, -2] == bi[:, -1]), f"the spare column holds postings: {state}"
         assert self._used <= self._post.shape[0], state
         if lo.shape[0]:
             assert lo[0] == 0 and hi[-1] == self.rows * self.detectors, f"blocks do not cover the detectors: {state}"
@@ -465,33 +563,50 @@ class DetectorBank:
         else:
             assert self._used == 0 and self.rows == 0, state
             assert not self._bit_postings.any(), f"bit postings stale: {state}"
-        for b in range(self.bits):
-            ids = self.postings_of(b)
-            assert np.all(np.diff(ids) > 0), f"postings of bit {b} not strictly ascending: {state}"
+        column, detector = self._every_posting()
+        inner = np.ones(max(0, column.shape[0] - 1), dtype=bool)
+        inner[np.flatnonzero(np.diff(column))] = False  # a step into the next column is not a step inside one
+        assert np.all(np.diff(detector)[inner] > 0), f"a column's postings are not strictly ascending: {state}"
         if expected_samples is not None:
             det_indptr, det_bits = expected_samples
             det_of = np.repeat(np.arange(det_indptr.shape[0] - 1), np.diff(det_indptr))
-            order = np.lexsort((det_of, det_bits))
-            want = det_of[order]
-            got = np.concatenate([self.postings_of(b) for b in range(self.bits)])
-            assert np.array_equal(want, got), f"postings differ from the detector samples: {state}"
+            want_col = self.query_columns(det_bits.astype(np.int64))
+            if self.columns is not None:
+                assert not np.any(want_col == self.columns.shape[0]), f"a sampled bit is not in the column map: {state}"
+            order = np.lexsort((det_of, want_col))
+            assert np.array_equal(want_col[order], column) and np.array_equal(det_of[order], detector), \
+                f"postings differ from the detector samples: {state}"
+
+    def _every_posting(self):
+        """``(column, detector)`` of every posting, ordered by column then detector id (when the bank is sound)."""
+        bi, lo = self._block_indptr, self._block_lo
+        if lo.shape[0] == 0:
+            return np.zeros(0, np.int64), np.zeros(0, np.int64)
+        runs = np.diff(bi, axis=1)
+        column = np.repeat(np.tile(np.arange(runs.shape[1]), runs.shape[0]), runs.ravel())
+        detector = np.repeat(lo, bi[:, -1] - bi[:, 0]) + self._post[: self._used].astype(np.int64)
+        order = np.argsort(column, kind="stable")  # block by block inside a column: detector ids ascend
+        return column[order], detector[order]
 
 
 class PendingAppend:
     """What :meth:`DetectorBank.prepare_append` computed, waiting for commit."""
 
     __slots__ = ("base_rows", "rows", "buffer", "block_indptr", "block_lo", "block_hi", "used", "max_sample",
-                 "usage", "weight_hist", "max_weight", "bit_postings")
+                 "usage", "weight_hist", "max_weight", "bit_postings", "columns")
 
     def __init__(self, base_rows, rows, buffer, block_indptr, block_lo, block_hi, used, max_sample, usage,
-                 weight_hist, max_weight, bit_postings):
+                 weight_hist, max_weight, bit_postings, columns):
         self.base_rows, self.rows, self.buffer = base_rows, rows, buffer
         self.block_indptr, self.block_lo, self.block_hi = block_indptr, block_lo, block_hi
         self.used, self.max_sample = used, max_sample
-        #: set-bit counts per bit and the weight histogram of the new rows
+        #: set-bit counts of the new rows as ``(bits, counts)`` (bits None: counts[b] is bit b's),
+        #: and their weight histogram
         self.usage, self.weight_hist = usage, weight_hist
-        #: heaviest code so far and each bit's postings over all blocks, after the append
+        #: heaviest code so far and each column's postings over all blocks, after the append
         self.max_weight, self.bit_postings = max_weight, bit_postings
+        #: the column map after the append (None: the bank has none)
+        self.columns = columns
 
 
 def _split_ranges(ranges, tasks):

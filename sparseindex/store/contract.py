@@ -32,7 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from .. import health, validation
-from ..codes import Codes, as_code, as_codes, packed_words, row_table
+from ..codes import Codes, as_code, as_codes, query_words, row_table
 from .bank import BLOCK_SPAN, DetectorBank
 from .hits import BatchHits, Hits, batch_of, no_hits
 
@@ -60,7 +60,7 @@ class Params:
         ...
         ValueError: threshold=3 must be <= sample_size=2
         """
-        bits = validation.integer("bits", bits, minimum=1)
+        bits = validation.width(bits)
         threshold = validation.integer("threshold", threshold, minimum=1)
         sample_size = validation.optional_integer("sample_size", sample_size, minimum=1)
         if sample_size is not None and threshold > sample_size:
@@ -105,7 +105,8 @@ class HealthMixin:
         p = self._params
         return health.StoreStats(
             bits=p.bits, threshold=p.threshold, sample_size=p.sample_size, detectors=p.detectors, seed=p.seed,
-            plan=self._plan, items=items, removed_pending=removed_pending, usage=usage, weight_hist=weight_hist,
+            plan=self._plan, items=items, removed_pending=removed_pending, usage_bits=usage[0], usage=usage[1],
+            weight_hist=weight_hist,
             memory_bytes=memory, served=served, measurement=self._measurement,
             watch_false_hit=None if watch is None else watch.false_hit,
             watch_warn_fraction=None if watch is None else watch.warn_fraction,
@@ -198,7 +199,7 @@ class HealthMixin:
             with self._reading("measure_false_hits"):
                 return self._query_batch(queries_batch, 0).counts
 
-        result = health.measure_false_hits(report, stats.usage, count_hits, queries, source=source, seed=seed,
+        result = health.measure_false_hits(report, stats.per_bit_usage() if source == "usage" else None, count_hits, queries, source=source, seed=seed,
                                            batch=batch)
         self._measurement = result
         return result
@@ -610,7 +611,8 @@ def matches_within(batch: Codes, m: int) -> BatchHits:
     bank.commit_append(bank.prepare_append(row_table(sub), np.arange(usable.size, dtype=np.int64), sub.weights,
                                            count_usage=False))
     q_indptr, q_bits = batch.to_csr()
-    counts, rows, overlaps = bank.scan_many(q_indptr, q_bits, packed_words(batch), row_table(sub),
+    table = row_table(sub)
+    counts, rows, overlaps = bank.scan_many(q_indptr, q_bits, query_words(batch, table), table,
                                             np.zeros(usable.size, dtype=bool), m)
     return batch_of(n, [counts], [usable[rows]], [overlaps])
 

@@ -31,13 +31,14 @@ import numpy as np
 
 from .._numba import kernels as _kernels
 from .._numba.config import PARALLEL_LOCK
+from .. import validation
 from ..codes import index_dtype, index_table, packed_table
 from ..version import __version__
 from ..errors import FormatVersionWarning, StoreFormatError
 
 MAGIC = b"\x89SIDX\r\n\x1a"
 FORMAT_MAJOR = 1
-FORMAT_MINOR = 2
+FORMAT_MINOR = 3
 #: Keys that format 1.0 (and sharded manifest format 1) spelled differently; nothing else changed.
 RENAMED_KEYS = {"segment": "sample_size", "active": "weight", "capacity": "limit"}
 _PARAM_RENAMES = {old: new for old, new in RENAMED_KEYS.items() if new == "sample_size"}
@@ -47,11 +48,13 @@ PREAMBLE_CRC_SPAN = 20  # the CRC covers bytes 0..19 (everything before it)
 ALIGN = 64
 #: Largest header accepted; checked before the header is read.
 MAX_HEADER_BYTES = 1 << 20
-#: Largest ``bits`` a file may declare (bit indices and per-bit tables stay small).
-MAX_BITS = 1 << 24
+#: Largest ``bits`` a file may declare: the widest a store may be (a wide
+#: store's per-bit tables are sized by the bits in use, its column map).
+MAX_BITS = validation.MAX_BITS
 MAX_DETECTORS_TOTAL = 2**31 - 1
 _WRITE_CHUNK = 1 << 23
 KIND = "sparseindex store"
+_NO_COLUMNS = np.zeros(0, dtype=np.int64)
 
 
 @dataclasses.dataclass
@@ -93,6 +96,7 @@ class StoreState:
     row_layout: str = "packed"
     row_indptr: np.ndarray | None = None  # sparse rows: rows + 1 int64 pointers
     row_indices: np.ndarray | None = None  # sparse rows: sorted set-bit indices, narrowest unsigned type
+    bit_columns: np.ndarray | None = None  # the postings' column map (int64 bits, ascending), or None
 
 
 def _fail(section, problem, path=None):
@@ -132,6 +136,10 @@ def _section_arrays(state: StoreState):
     sections += [
         ("block_lo", state.block_lo),
         ("block_hi", state.block_hi),
+    ]
+    if state.bit_columns is not None:
+        sections.append(("bit_columns", state.bit_columns))
+    sections += [
         ("block_indptr", state.block_indptr),
         ("postings", state.postings),
     ]
@@ -177,6 +185,7 @@ def encode(state: StoreState):
             "rows": state.rows, "next_id": state.next_id, "removed": state.removed_count,
             "blocks": int(state.block_lo.shape[0]), "postings": int(state.postings.shape[0]),
             "set_bits": 0 if state.row_indices is None else int(state.row_indices.shape[0]),
+            "mapped_bits": None if state.bit_columns is None else int(state.bit_columns.shape[0]),
         },
         "sections": table,
     }
@@ -414,14 +423,16 @@ def _parse_params(header, strict, minor, path):
     detectors = p.int("detectors", 1, MAX_DETECTORS_TOTAL)
     seed = p.int("seed", 0, 2**64 - 1)
     block_span = p.int("block_span", 1, 2**16)
-    c = _Fields(header["counts"], "counts",
-                ("rows", "next_id", "removed", "blocks", "postings") + (("set_bits",) if minor >= 2 else ()), strict, path)
+    counted = ("rows", "next_id", "removed", "blocks", "postings") + (("set_bits",) if minor >= 2 else ()) + (
+        ("mapped_bits",) if minor >= 3 else ())
+    c = _Fields(header["counts"], "counts", counted, strict, path)
     next_id = c.int("next_id", 0, 2**62)
     rows = c.int("rows", 0, min(next_id, MAX_DETECTORS_TOTAL // detectors))
     removed = c.int("removed", 0, rows)
     blocks = c.int("blocks", 0, 2**62)
     postings = c.int("postings", 0, 2**62)
     set_bits = c.int("set_bits", 0, 2**62) if minor >= 2 else 0
+    mapped_bits = c.int("mapped_bits", 0, bits, allow_none=True) if minor >= 3 else None
     if layout == "packed" and set_bits:
         _fail("counts", f"set_bits={set_bits} in a store with packed rows (it counts sparse row indices)", path)
     if (blocks == 0) != (rows == 0):
@@ -429,7 +440,7 @@ def _parse_params(header, strict, minor, path):
     del top
     return dict(bits=bits, threshold=threshold, sample_size=sample_size, detectors=detectors, seed=seed,
                 block_span=block_span, rows=rows, next_id=next_id, removed_count=removed, blocks=blocks,
-                postings=postings, row_layout=layout, set_bits=set_bits)
+                postings=postings, row_layout=layout, set_bits=set_bits, mapped_bits=mapped_bits)
 
 
 def _expected_sections(v):
@@ -444,7 +455,12 @@ def _expected_sections(v):
     out += [
         ("block_lo", "<i8", (v["blocks"],)),
         ("block_hi", "<i8", (v["blocks"],)),
-        ("block_indptr", "<i8", (v["blocks"], bits + 1)),
+    ]
+    mapped = v["mapped_bits"]
+    if mapped is not None:
+        out.append(("bit_columns", "<i8", (mapped,)))
+    out += [
+        ("block_indptr", "<i8", (v["blocks"], bits + 1 if mapped is None else mapped + 2)),
         ("postings", "<u2", (v["postings"],)),
     ]
     return out
@@ -556,6 +572,10 @@ def _validate_blocks(arrays, table, weights, v, path):
     """Block ranges, offsets and every posting against the codes (kernel ``check_postings``)."""
     rows, detectors = v["rows"], v["detectors"]
     lo, hi, indptr, post = arrays["block_lo"], arrays["block_hi"], arrays["block_indptr"], arrays["postings"]
+    columns = arrays.get("bit_columns")
+    if columns is not None and columns.shape[0]:
+        if columns[0] < 0 or columns[-1] >= v["bits"] or np.any(np.diff(columns) <= 0):
+            _fail("bit_columns", f"the column map is not strictly ascending inside 0..{v['bits'] - 1}", path)
     span = v["block_span"]
     if v["blocks"]:
         if lo[0] != 0 or hi[-1] != rows * detectors:
@@ -573,12 +593,15 @@ def _validate_blocks(arrays, table, weights, v, path):
                   f"not 0..{post.shape[0]}", path)
         if np.any(indptr[1:, 0] != indptr[:-1, -1]) or np.any(np.diff(indptr, axis=1) < 0):
             _fail("block_indptr", "offsets are not monotone", path)
+        if columns is not None and np.any(indptr[:, -2] != indptr[:, -1]):
+            _fail("block_indptr", "the spare column (bits no code sets) holds postings", path)
         tail_rows = indptr[groups == groups[-1]]
         if tail_rows.shape[0] > 2 + int(np.log2(1 + tail_rows[-1, -1] - tail_rows[0, 0])):
             _fail("block_lo", f"{tail_rows.shape[0]} blocks in the last span, more than a store ever keeps", path)
         sample_size = -1 if v["sample_size"] is None else v["sample_size"]
         with PARALLEL_LOCK:
-            problem, where = _kernels.check_postings(post, indptr, lo, hi, table, weights, detectors, sample_size)
+            problem, where = _kernels.check_postings(post, indptr, _NO_COLUMNS if columns is None else columns, lo, hi,
+                                                     table, weights, detectors, sample_size)
         messages = {
             1: f"posting {where} points outside its block",
             2: f"posting {where} breaks the ascending order of its bit",
@@ -713,6 +736,7 @@ def _state_from(buf, header_text, header, minor, size, path) -> StoreState:
         row_layout=v["row_layout"], row_indptr=arrays.get("row_indptr"), row_indices=arrays.get("row_indices"),
         block_lo=arrays["block_lo"], block_hi=arrays["block_hi"], block_indptr=arrays["block_indptr"],
         postings=arrays["postings"], weights=weights.astype(np.int32), max_sample=max_sample,
+        bit_columns=arrays.get("bit_columns"),
     )
 
 

@@ -259,26 +259,32 @@ class RowTable:
         indptr, indices = self._gather(rows)
         return indptr, indices.astype(np.int64)
 
-    def bit_usage(self, rows=None) -> np.ndarray:
-        """Set-bit counts per bit of ``rows`` (None: every live row)."""
+    def bit_usage(self, rows=None):
+        """Set-bit counts of ``rows`` (None: every live row) as ``(bits, counts)``.
+
+        Packed rows: ``bits`` is None and ``counts[b]`` counts bit ``b``.
+        Index rows: ``bits`` are the distinct bits set (ascending), so the
+        figures follow the set bits, not the width.
+        """
         if self.layout == "sparse":
             _, bits = self.indices_of(self.live_rows() if rows is None else rows)
-            return np.bincount(bits, minlength=self.bits).astype(np.int64)
+            used, counts = np.unique(bits, return_counts=True)
+            return used.astype(np.int64), counts.astype(np.int64)
         if rows is None:
             if self.rows == 0:
-                return np.zeros(self.bits, dtype=np.int64)
+                return None, np.zeros(self.bits, dtype=np.int64)
             pick, skip, words = np.zeros(0, dtype=np.int64), self.removed[: self.rows], self.words[: self.rows]
         else:
             pick, skip, words = np.asarray(rows, dtype=np.int64), np.zeros(0, dtype=bool), self.words
             if pick.shape[0] == 0:
-                return np.zeros(self.bits, dtype=np.int64)
+                return None, np.zeros(self.bits, dtype=np.int64)
         with PARALLEL_LOCK:
-            return kernels.bit_usage(words, pick, skip)[: self.bits]
+            return None, kernels.bit_usage(words, pick, skip)[: self.bits]
 
     def weight_hist(self, rows=None) -> np.ndarray:
-        """Codes of each weight 0..bits among ``rows`` (None: every live row)."""
+        """Codes of each weight 0..heaviest among ``rows`` (None: every live row)."""
         weights = self.weights[: self.rows][~self.removed[: self.rows]] if rows is None else self.weights[rows]
-        return np.bincount(weights, minlength=self.bits + 1).astype(np.int64)
+        return np.bincount(weights, minlength=1).astype(np.int64)
 
     def check(self, threshold: int = 1) -> None:
         """Every invariant of the table; AssertionError describing the first that fails."""
@@ -317,42 +323,79 @@ class RowTable:
 
 
 class UsageCounts:
-    """Per-bit set counts and the weight histogram of the live codes, kept current by every change.
+    """Set-bit counts and the weight histogram of the live codes, kept current by every change.
 
-    A loaded store starts *uncounted* (counting is O(N)) and counts once,
-    on first need; after that every change adds or subtracts its share.
+    ``sparse`` counts only the bits in use (``used``, ascending, with
+    ``usage[i]`` the count of bit ``used[i]``), for wide stores; otherwise
+    ``used`` is None and ``usage[b]`` counts bit ``b``. A loaded store
+    starts *uncounted* (counting is O(N)) and counts once, on first need;
+    after that every change adds or subtracts its share.
     """
 
-    def __init__(self, bits: int, counted: bool = True):
-        self.bits = bits
-        self.usage = np.zeros(bits, dtype=np.int64) if counted else None
-        self.weight_hist = np.zeros(bits + 1, dtype=np.int64) if counted else None
+    def __init__(self, bits: int, counted: bool = True, sparse: bool = False):
+        self.bits, self.sparse = bits, sparse
+        self.used = np.zeros(0, dtype=np.int64) if sparse else None
+        self.usage = np.zeros(0 if sparse else bits, dtype=np.int64) if counted else None
+        self.weight_hist = np.zeros(1, dtype=np.int64) if counted else None
 
     @property
     def counted(self) -> bool:
         return self.usage is not None
 
     def count(self, table: RowTable) -> None:
-        self.weight_hist = table.weight_hist()
-        self.usage = table.bit_usage()
+        self.used = np.zeros(0, dtype=np.int64) if self.sparse else None
+        self.usage = np.zeros(0 if self.sparse else self.bits, dtype=np.int64)
+        self.weight_hist = np.zeros(1, dtype=np.int64)
+        self.added(table.bit_usage(), table.weight_hist())
 
-    def added(self, usage: np.ndarray, weight_hist: np.ndarray) -> None:
-        if self.counted:
-            self.usage += usage
-            self.weight_hist += weight_hist
+    def added(self, usage: tuple, weight_hist: np.ndarray, sign: int = 1) -> None:
+        """Add (``sign`` -1: take away) ``usage`` = ``(bits, counts)`` of :meth:`RowTable.bit_usage` and a histogram."""
+        if not self.counted:
+            return
+        bits, counts = usage
+        if not self.sparse:
+            if bits is None:
+                self.usage = self.usage + sign * counts
+            else:
+                self.usage = self.usage.copy()
+                self.usage[bits] += sign * counts
+        else:
+            if bits is None:
+                bits = np.flatnonzero(counts)
+                counts = counts[bits]
+            merged = bits if np.array_equal(bits, self.used) else np.union1d(self.used, bits)
+            out = np.zeros(merged.shape[0], dtype=np.int64)
+            out[np.searchsorted(merged, self.used)] = self.usage
+            out[np.searchsorted(merged, bits)] += sign * counts
+            self.used, self.usage = merged.astype(np.int64), out
+        self.weight_hist = _padded_sum(self.weight_hist, sign * weight_hist)
 
-    def removed(self, usage: np.ndarray, weight_hist: np.ndarray) -> None:
-        if self.counted:
-            self.usage -= usage
-            self.weight_hist -= weight_hist
+    def removed(self, usage: tuple, weight_hist: np.ndarray) -> None:
+        self.added(usage, weight_hist, sign=-1)
 
     def check(self, table: RowTable) -> None:
         if not self.counted:
             return
         live = table.live_rows()
         _, bits = table.indices_of(live)
-        assert np.array_equal(self.usage, np.bincount(bits, minlength=self.bits)), "bit usage stale"
-        assert np.array_equal(self.weight_hist, table.weight_hist()), "weight histogram stale"
+        if self.sparse:
+            want_bits, want = np.unique(bits, return_counts=True)
+            nonzero = self.usage != 0
+            assert np.all(self.usage >= 0), "bit usage negative"
+            assert np.array_equal(self.used[nonzero], want_bits) and np.array_equal(self.usage[nonzero], want), \
+                "bit usage stale"
+        else:
+            assert np.array_equal(self.usage, np.bincount(bits, minlength=self.bits)), "bit usage stale"
+        hist = np.trim_zeros(self.weight_hist, "b")
+        assert np.array_equal(hist, np.trim_zeros(table.weight_hist(), "b")), "weight histogram stale"
+
+
+def _padded_sum(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """``a + b`` with the shorter zero-padded to the longer's length."""
+    out = np.zeros(max(a.shape[0], b.shape[0]), dtype=np.int64)
+    out[: a.shape[0]] += a
+    out[: b.shape[0]] += b
+    return out
 
 
 def _room(need: int, current: int) -> int:

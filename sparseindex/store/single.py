@@ -20,7 +20,7 @@ import numpy as np
 from .. import health, validation
 from .._numba import kernels
 from .._numba.config import PARALLEL_LOCK
-from ..codes import Codes, packed_words, row_table
+from ..codes import Codes, query_words, row_table
 from . import format as _persist
 from .bank import BLOCK_SPAN, DetectorBank
 from .contract import Params, StoreBase
@@ -102,6 +102,8 @@ class Store(StoreBase):
     _block_span = BLOCK_SPAN
     #: Row layout: "auto" (by width, :func:`~sparseindex.store.rows.layout_for`); tests force one.
     _row_layout = "auto"
+    #: Postings column map: None (by width, see ``store.bank``); tests force True or False.
+    _column_map = None
 
     def __init__(self, bits, *, threshold, sample_size=None, detectors=1, seed=None):
         self._init_parts(Params.checked(bits, threshold, sample_size, detectors, seed), None)
@@ -109,9 +111,10 @@ class Store(StoreBase):
     def _init_parts(self, params: Params, plan, *, table=None, bank=None, counted=True) -> None:
         self._init_contract(params, plan)
         p = params
-        self._bank = bank or DetectorBank(p.bits, p.threshold, p.sample_size, p.detectors, p.seed, self._block_span)
+        self._bank = bank or DetectorBank(p.bits, p.threshold, p.sample_size, p.detectors, p.seed, self._block_span,
+                                          column_map=self._column_map)
         self._table = table or RowTable(p.bits, layout_for(p.bits) if self._row_layout == "auto" else self._row_layout)
-        self._counts = UsageCounts(p.bits, counted)
+        self._counts = UsageCounts(p.bits, counted, sparse=self._table.layout == "sparse")
         self._guard = Guard("store")
         self._local = threading.local()  # per-thread scan counters
         self._mapping = None  # keeps a memory-mapped file open
@@ -203,8 +206,10 @@ class Store(StoreBase):
                 if not self._counts.counted:
                     self._counts.count(self._table)
         with self._guard.reading():
-            return (len(self), self.removed_count, self._counts.usage.copy(), self._counts.weight_hist.copy(),
-                    self._table.nbytes + self._bank.nbytes)
+            counts = self._counts
+            return (len(self), self.removed_count, (None if counts.used is None else counts.used.copy(),
+                                                    counts.usage.copy()),
+                    counts.weight_hist.copy(), self._table.nbytes + self._bank.nbytes)
 
     # -- primitives of the contract -----------------------------------------
 
@@ -260,8 +265,9 @@ class Store(StoreBase):
         table = self._table
         if table.rows == 0:
             return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
-        rows, overlaps = self._bank.scan_one(q.to_csr()[1], packed_words(q)[0], table.kernel_table(), table.removed,
-                                             min_overlap, self._counters())
+        kernel_table = table.kernel_table()
+        rows, overlaps = self._bank.scan_one(q.to_csr()[1], query_words(q, kernel_table)[0], kernel_table,
+                                             table.removed, min_overlap, self._counters())
         ids = table.ids_of(rows)
         order = np.lexsort((ids, -overlaps))
         return Hits(ids[order], overlaps[order])
@@ -271,8 +277,9 @@ class Store(StoreBase):
         if table.rows == 0 or n == 0:
             return no_hits(n)
         q_indptr, q_bits = batch.to_csr()
-        counts, rows, overlaps = self._bank.scan_many(q_indptr, q_bits, packed_words(batch), table.kernel_table(),
-                                                      table.removed, min_overlap)
+        kernel_table = table.kernel_table()
+        counts, rows, overlaps = self._bank.scan_many(q_indptr, q_bits, query_words(batch, kernel_table),
+                                                      kernel_table, table.removed, min_overlap)
         return batch_of(n, [counts], [table.ids_of(rows)], [overlaps])
 
     def _complete_matches(self, batch: Codes, m: int) -> BatchHits:
@@ -286,15 +293,23 @@ class Store(StoreBase):
         unsure = np.flatnonzero(~table.removed[:n] & (weights >= m) & (m < self.threshold + weights - sample))
         if unsure.size == 0:
             return hits
-        counts, rows, overlaps = kernels.matches_in_rows(packed_words(batch), table.kernel_table(), unsure, m)
+        q_indptr, q_bits = batch.to_csr()
+        kernel_table = table.kernel_table()
+        counts, rows, overlaps = kernels.matches_in_rows(q_indptr, q_bits, query_words(batch, kernel_table),
+                                                         kernel_table, unsure, m)
         return batch_of(len(batch), [hits.counts, counts], [hits.ids, table.ids_of(rows)], [hits.overlaps, overlaps],
                         unique=True)
 
     def _nearest(self, q: Codes, k: int) -> Hits:
         table = self._table
-        with PARALLEL_LOCK:
-            overlaps = kernels.overlaps_with_all(packed_words(q)[0], table.kernel_table(), table.rows)
-        rows = kernels.top_k(overlaps, table.removed, k, self.bits)
+        q_bits = q.to_csr()[1]
+        if self._bank.whole_codes:  # count from the postings: the cost follows the query's bits
+            overlaps = self._bank.overlaps(q_bits)
+        else:
+            with PARALLEL_LOCK:
+                kernel_table = table.kernel_table()
+                overlaps = kernels.overlaps_with_all(query_words(q, kernel_table)[0], q_bits, kernel_table, table.rows)
+        rows = kernels.top_k(overlaps, table.removed, k, q_bits.shape[0])
         return Hits(table.ids_of(rows), overlaps[rows])
 
     # -- store-only calls ---------------------------------------------------
@@ -413,7 +428,7 @@ class Store(StoreBase):
         """The persistent state; call with the writer mutex held."""
         t, p = self._table, self._params
         n = t.rows
-        post, block_indptr, block_lo, block_hi = self._bank.arrays()
+        post, block_indptr, block_lo, block_hi, columns = self._bank.arrays()
         return _persist.StoreState(
             bits=p.bits, threshold=p.threshold, sample_size=p.sample_size, detectors=p.detectors, seed=p.seed,
             block_span=self._bank.block_span, plan=None if self._plan is None else self._plan.to_dict(),
@@ -422,7 +437,7 @@ class Store(StoreBase):
             row_layout=t.layout, row_indptr=None if t.layout == "packed" else t.indptr[: n + 1],
             row_indices=None if t.layout == "packed" else t.indices[: t.indptr[n]],
             row_ids=None if t.row_ids is None else t.row_ids[:n],
-            block_lo=block_lo, block_hi=block_hi, block_indptr=block_indptr, postings=post,
+            block_lo=block_lo, block_hi=block_hi, block_indptr=block_indptr, postings=post, bit_columns=columns,
         )
 
     @classmethod
@@ -432,7 +447,7 @@ class Store(StoreBase):
             state.bits, state.threshold, state.sample_size, state.detectors, state.seed, state.block_span,
             rows=state.rows, postings=state.postings, block_indptr=state.block_indptr,
             block_lo=state.block_lo, block_hi=state.block_hi, max_sample=state.max_sample,
-            max_weight=int(state.weights.max()) if state.weights.shape[0] else 0,
+            max_weight=int(state.weights.max()) if state.weights.shape[0] else 0, columns=state.bit_columns,
         )
         table = RowTable.from_arrays(state.bits, words=state.words, indptr=state.row_indptr, indices=state.row_indices,
                                      weights=state.weights, removed=state.removed,
