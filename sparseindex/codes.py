@@ -692,10 +692,11 @@ def index_dtype(bits: int):
     >>> [index_dtype(b).__name__ for b in (256, 257, 2**16 + 1, 2**32 + 1)]
     ['uint8', 'uint16', 'uint32', 'uint64']
     """
-    for dtype in (np.uint8, np.uint16, np.uint32):
-        if bits - 1 <= np.iinfo(dtype).max:
-            return dtype
-    return np.uint64
+    # plain comparisons: this runs on every wide query, and np.iinfo costs microseconds
+    return np.uint8 if bits <= 2**8 else np.uint16 if bits <= 2**16 else np.uint32 if bits <= 2**32 else np.uint64
+
+
+_INDEX_BYTES = {np.uint8: 1, np.uint16: 2, np.uint32: 4, np.uint64: 8}
 
 
 def _sparse_is_smaller(bits: int, rows: int, nnz: int) -> bool:
@@ -703,7 +704,7 @@ def _sparse_is_smaller(bits: int, rows: int, nnz: int) -> bool:
     if bits <= PACKED_MAX_BITS:
         return False
     packed = rows * 8 * _words_for(bits)
-    sparse = 8 * (rows + 1) + nnz * np.dtype(index_dtype(bits)).itemsize
+    sparse = 8 * (rows + 1) + nnz * _INDEX_BYTES[index_dtype(bits)]
     return sparse < packed
 
 

@@ -22,6 +22,7 @@ from hypothesis import strategies as st
 from scipy.sparse.csgraph import connected_components
 
 from sparseindex import Codes
+from sparseindex.codes import packed_table
 from sparseindex.near_duplicates import banding as _banding
 from sparseindex._numba import unionfind as _unionfind
 from sparseindex.near_duplicates.banding import (
@@ -129,15 +130,15 @@ def test_similarity_moments_equal_direct_means_over_all_pairs():
     lo, hi = np.triu_indices(60, 1)
     w = codes.weights
     j = ov[lo, hi] / (w[lo] + w[hi] - ov[lo, hi])
-    got = _banding.similarity_moments(codes.words, w, max_rows=4)
+    got = _banding.similarity_moments(codes, max_rows=4)
     assert got == pytest.approx([np.mean(j**r) for r in range(1, 5)])
 
 
 def test_similarity_moments_sample_is_seeded_and_close():
     codes = Codes.random(3000, bits=256, weight=20, seed=4)
-    a = _banding.similarity_moments(codes.words, codes.weights, max_rows=2, samples=50_000, seed=1)
-    b = _banding.similarity_moments(codes.words, codes.weights, max_rows=2, samples=50_000, seed=1)
-    full = _banding.similarity_moments(codes.words, codes.weights, max_rows=2, samples=10**7)
+    a = _banding.similarity_moments(codes, max_rows=2, samples=50_000, seed=1)
+    b = _banding.similarity_moments(codes, max_rows=2, samples=50_000, seed=1)
+    full = _banding.similarity_moments(codes, max_rows=2, samples=10**7)
     assert np.array_equal(a, b)
     assert a[0] == pytest.approx(full[0], rel=0.03)
 
@@ -146,10 +147,10 @@ def test_index_seconds_counts_pairs_per_bit():
     # reference: column sums of the dense matrix (numpy)
     codes = Codes.random(500, bits=200, weight=15, seed=5)
     usage = codes.to_dense().sum(axis=0)
-    assert np.array_equal(_banding.bit_usage(codes.words, 200), usage)
+    assert np.array_equal(_banding.bit_usage(codes), usage[usage > 0])
     c = _banding.COST
     want = c["posting"] * (usage.astype(float) ** 2).sum() / 2 / 2 + c["add"] * usage.sum()
-    assert _banding.index_seconds(codes.words, 200, threads=2) == pytest.approx(want)
+    assert _banding.index_seconds(codes, threads=2) == pytest.approx(want)
 
 
 # ---------------------------------------------------------------------------
@@ -174,7 +175,7 @@ def test_candidate_recall_on_planted_pairs_within_3_sigma(weight, overlap, bands
     # reference: simulation count against the analytic S-curve (MMDS §3.4), within 3 sigma
     n_pairs = 3000
     codes = _pairs_with_overlap(n_pairs, 4096, weight, overlap, seed=overlap * 7 + bands)
-    lo, hi, ov, _ = candidate_pairs(codes.words, codes.weights, min_overlap=overlap, bands=bands, rows=rows, seed=11)
+    lo, hi, ov, _ = candidate_pairs(codes, min_overlap=overlap, bands=bands, rows=rows, seed=11)
     planted = (lo % 2 == 0) & (hi == lo + 1)
     assert np.all(ov[planted] == overlap)
     found = int(planted.sum())
@@ -188,7 +189,7 @@ def test_one_min_hash_agrees_with_chance_jaccard_within_3_sigma():
     # reference: Broder 1997, P[min-hash agrees] = J; simulation within 3 sigma
     n_pairs, hashes = 500, 40
     codes = _pairs_with_overlap(n_pairs, 2048, 30, 20, seed=9)  # J = 20 / 40
-    keys = _banding.band_keys(codes.words, codes.weights, bands=hashes, rows=1, seed=5)
+    keys = _banding.band_keys(codes, bands=hashes, rows=1, seed=5)
     agree = int((keys[:, 0::2] == keys[:, 1::2]).sum())
     trials = n_pairs * hashes
     sigma = math.sqrt(trials * 0.25)
@@ -211,7 +212,7 @@ def test_every_candidate_returned_is_exact(seed, n, m, bands, rows):
     base = rng.random((n, 24)) < 0.35
     base[1::2] = base[::2][: base[1::2].shape[0]] ^ (rng.random((n // 2, 24)) < 0.1)
     codes = Codes.from_dense(base)
-    lo, hi, ov, checked = candidate_pairs(codes.words, codes.weights, min_overlap=m, bands=bands, rows=rows, seed=seed)
+    lo, hi, ov, checked = candidate_pairs(codes, min_overlap=m, bands=bands, rows=rows, seed=seed)
     exact = _exact_pairs(codes, m)
     got = {(int(a), int(b)): int(z) for a, b, z in zip(lo, hi, ov)}
     assert len(got) == lo.shape[0]  # distinct
@@ -227,18 +228,18 @@ def test_every_candidate_returned_is_exact(seed, n, m, bands, rows):
 @given(st.integers(0, 2**32), st.permutations(range(12)))
 def test_band_keys_depend_on_the_code_not_its_position(seed, perm):
     codes = Codes.random(12, bits=300, weight=10, seed=seed % 1000)
-    keys = _banding.band_keys(codes.words, codes.weights, bands=5, rows=2, seed=seed)
+    keys = _banding.band_keys(codes, bands=5, rows=2, seed=seed)
     shuffled = codes[np.array(perm)]
-    keys2 = _banding.band_keys(shuffled.words, shuffled.weights, bands=5, rows=2, seed=seed)
+    keys2 = _banding.band_keys(shuffled, bands=5, rows=2, seed=seed)
     assert np.array_equal(keys[:, perm], keys2)
 
 
 def test_candidates_verified_in_chunks_match_one_chunk(monkeypatch):
     codes = _pairs_with_overlap(400, 512, 20, 18, seed=2)
-    one = candidate_pairs(codes.words, codes.weights, min_overlap=18, bands=6, rows=2, seed=3)
+    one = candidate_pairs(codes, min_overlap=18, bands=6, rows=2, seed=3)
     monkeypatch.setattr(_banding, "VERIFY_CHUNK", 7)
     monkeypatch.setattr(_banding, "SIGNATURE_CHUNK", 33)
-    many = candidate_pairs(codes.words, codes.weights, min_overlap=18, bands=6, rows=2, seed=3)
+    many = candidate_pairs(codes, min_overlap=18, bands=6, rows=2, seed=3)
     for a, b in zip(one[:3], many[:3]):
         assert np.array_equal(a, b)
     assert one[3] == many[3]
@@ -261,11 +262,11 @@ def test_exact_copy_owners_match_numpy_unique(seed, n):
     rng = np.random.default_rng(seed)
     pool = rng.integers(0, 2**63, size=(max(1, n // 3), 3), dtype=np.uint64)
     words = np.ascontiguousarray(pool[rng.integers(0, pool.shape[0], size=n)])
-    hashes = _unionfind.row_hashes(words)
+    hashes = _unionfind.row_hashes(packed_table(words))
     if seed % 2:  # force hash collisions: rows must still be told apart by their words
         hashes = hashes % np.uint64(2)
     order = np.argsort(hashes, kind="stable")
-    owner = _unionfind.exact_copy_owners(order, _banding.run_pair_counts(hashes[order]), words)
+    owner = _unionfind.exact_copy_owners(order, _banding.run_pair_counts(hashes[order]), packed_table(words))
     _, first, inverse = np.unique(words, axis=0, return_index=True, return_inverse=True)
     assert np.array_equal(owner, first[inverse.reshape(-1)])
 

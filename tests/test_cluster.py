@@ -419,3 +419,25 @@ def _save_copy(store, tmp_path):
     path = tmp_path / "reference.sidx"
     store.save(path)
     return path
+
+
+def test_a_sharded_store_of_wide_codes_matches_a_single_store(client, tmp_path):
+    # reference: a single Store of the same 2**20-bit codes (index rows, column map)
+    bits = 2**20
+    ref = Store(bits, threshold=8, sample_size=20, detectors=2, seed=4)
+    with cl.ShardedStore(client, 2, bits, threshold=8, sample_size=20, detectors=2, seed=4) as s:
+        codes = Codes.random(600, bits, 200, seed=6)
+        assert codes.layout == "sparse"
+        assert np.array_equal(s.add(codes), ref.add(codes))
+        rng = np.random.default_rng(2)
+        queries = Codes.from_indices([np.unique(np.concatenate([codes[int(i)][:150], rng.integers(0, bits, 50)]))
+                                      for i in rng.integers(0, 600, 20)], bits=bits)
+        assert same_batch(s.query_many(queries), ref.query_many(queries))
+        assert s.nearest(queries[0], 5) == ref.nearest(queries[0], 5)
+        picked = s.get([5, 1, 300])
+        assert picked.layout == "sparse" and picked == ref.get([5, 1, 300])
+        h, r = s.health(), ref.health()
+        assert (h.effective_bits, h.unused_bits, h.items) == (r.effective_bits, r.unused_bits, r.items)
+        s.save(tmp_path / "wide")
+    with cl.ShardedStore.load(client, tmp_path / "wide") as again:
+        assert same_batch(again.query_many(queries), ref.query_many(queries))

@@ -159,8 +159,7 @@ def test_banding_first_is_the_greedy_rule_over_the_pairs_it_verified(planted):
     rank[order] = np.arange(order.shape[0])
     uid = rank[inverse]
     heads = np.sort(first)
-    u_lo, u_hi, _, _ = _banding.candidate_pairs(codes.words[heads], codes.weights[heads], min_overlap=MIN_OVERLAP,
-                                                bands=3, rows=4, seed=5)
+    u_lo, u_hi, _, _ = _banding.candidate_pairs(codes[heads], min_overlap=MIN_OVERLAP, bands=3, rows=4, seed=5)
     found = set(zip(u_lo.tolist(), u_hi.tolist()))
     keep = np.array([(uid[a] == uid[b]) or ((min(uid[a], uid[b]), max(uid[a], uid[b])) in found)
                      for a, b in zip(lo.tolist(), hi.tolist())])

@@ -8,20 +8,15 @@ from __future__ import annotations
 import numpy as np
 
 from .config import kernel, parallel_kernel, prange
-from .kernels import mix64, popcount64
+from .kernels import mix64, rows_overlap
 
 
 @kernel
-def pair_overlaps(words, lo, hi):
-    """Exact overlap (AND + popcount) of rows ``lo[t]`` and ``hi[t]``."""
+def pair_overlaps(table, lo, hi):
+    """Exact overlap of rows ``lo[t]`` and ``hi[t]`` of a row table (see ``kernels``)."""
     out = np.empty(lo.shape[0], dtype=np.int64)
     for t in range(lo.shape[0]):
-        a = words[lo[t]]
-        b = words[hi[t]]
-        total = 0
-        for w in range(a.shape[0]):
-            total += popcount64(a[w] & b[w])
-        out[t] = total
+        out[t] = rows_overlap(table, lo[t], hi[t])
     return out
 
 
@@ -68,23 +63,18 @@ def run_pair_counts(sorted_keys):
 
 
 @parallel_kernel
-def verify_positions(order, positions, offsets, counts, words, out):
+def verify_positions(order, positions, offsets, counts, table, out):
     """Overlap of every candidate pair of the given sorted positions, into ``out``.
 
     Position ``p`` pairs ``order[p]`` with ``order[p + 1 .. p + counts[p]]``;
     its overlaps go to ``out[offsets[k] ..]`` where ``positions[k] == p``.
     """
-    n_words = words.shape[1]
     for k in prange(positions.shape[0]):
         p = positions[k]
-        a = words[order[p]]
+        a = order[p]
         base = offsets[k]
         for t in range(counts[p]):
-            b = words[order[p + 1 + t]]
-            total = 0
-            for w in range(n_words):
-                total += popcount64(a[w] & b[w])
-            out[base + t] = total
+            out[base + t] = rows_overlap(table, a, order[p + 1 + t])
     return out
 
 

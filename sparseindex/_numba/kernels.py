@@ -149,6 +149,25 @@ def _row_overlap(a, b):
 
 
 @inline_kernel
+def _merged_count(x, x_lo, x_hi, y, y_lo, y_hi):
+    """How many values ``x[x_lo:x_hi]`` and ``y[y_lo:y_hi]`` share (both strictly ascending): one merge pass."""
+    total = 0
+    p, q = x_lo, y_lo
+    while p < x_hi and q < y_hi:
+        a = np.int64(x[p])
+        b = np.int64(y[q])
+        if a == b:
+            total += 1
+            p += 1
+            q += 1
+        elif a < b:
+            p += 1
+        else:
+            q += 1
+    return total
+
+
+@inline_kernel
 def _stored_overlap(table, r, q_words, q_bits):
     """Exact overlap of stored row ``r`` with a query.
 
@@ -159,21 +178,7 @@ def _stored_overlap(table, r, q_words, q_bits):
     words, indptr, indices = table
     if indptr.shape[0] == 0:
         return _row_overlap(words[r], q_words)
-    total = 0
-    p, end = indptr[r], indptr[r + 1]
-    t, n_q = 0, q_bits.shape[0]
-    while p < end and t < n_q:
-        a = np.int64(indices[p])
-        b = q_bits[t]
-        if a == b:
-            total += 1
-            p += 1
-            t += 1
-        elif a < b:
-            p += 1
-        else:
-            t += 1
-    return total
+    return _merged_count(indices, indptr[r], indptr[r + 1], q_bits, 0, q_bits.shape[0])
 
 
 @inline_kernel
@@ -204,6 +209,48 @@ def _stored_has(table, r, b):
         else:
             hi = mid
     return lo < end and np.int64(indices[lo]) == b
+
+
+@inline_kernel
+def rows_overlap(table, a, b):
+    """Exact overlap of rows ``a`` and ``b`` of one row table (AND + popcount, or a merge of index rows)."""
+    words, indptr, indices = table
+    if indptr.shape[0] == 0:
+        return _row_overlap(words[a], words[b])
+    return _merged_count(indices, indptr[a], indptr[a + 1], indices, indptr[b], indptr[b + 1])
+
+
+@inline_kernel
+def rows_equal(table, a, b):
+    """Whether rows ``a`` and ``b`` of one row table hold the same code."""
+    words, indptr, indices = table
+    if indptr.shape[0] == 0:
+        for w in range(words.shape[1]):
+            if words[a, w] != words[b, w]:
+                return False
+        return True
+    n = indptr[a + 1] - indptr[a]
+    if indptr[b + 1] - indptr[b] != n:
+        return False
+    for t in range(n):
+        if indices[indptr[a] + t] != indices[indptr[b] + t]:
+            return False
+    return True
+
+
+@inline_kernel
+def row_hash(table, r):
+    """A 64-bit hash of row ``r`` (splitmix64 fold over its words, or over its indices)."""
+    words, indptr, indices = table
+    if indptr.shape[0] == 0:
+        h = np.uint64(words.shape[1])
+        for w in range(words.shape[1]):
+            h = mix64(h ^ words[r, w])
+        return h
+    h = np.uint64(indptr[r + 1] - indptr[r])
+    for p in range(indptr[r], indptr[r + 1]):
+        h = mix64(h ^ np.uint64(indices[p]))
+    return h
 
 
 @inline_kernel
@@ -1008,28 +1055,91 @@ def overlaps_with_rows(q_words, q_bits, table, rows):
     return out
 
 
-@parallel_kernel
-def overlaps_from_postings(q_cols, post, block_indptr, block_lo, detectors, n_rows):
-    """Exact overlap of one query with every row, counted from the postings of its columns.
+@kernel
+def column_bitmap(columns, n_words):
+    """A bitmap of the mapped bits and, per word, the columns before it: ``(words, rank)``.
+
+    Column of mapped bit b: ``rank[b >> 6] + popcount(words[b >> 6] & ((1 << (b & 63)) - 1))``.
+    """
+    words = np.zeros(n_words, dtype=np.uint64)
+    for t in range(columns.shape[0]):
+        b = columns[t]
+        words[b >> 6] |= np.uint64(1) << np.uint64(b & 63)
+    rank = np.empty(n_words, dtype=np.int64)
+    total = 0
+    for w in range(n_words):
+        rank[w] = total
+        total += popcount64(words[w])
+    return words, rank
+
+
+@kernel
+def columns_of_bits(q_bits, words, rank, spare):
+    """Each query bit's postings column through :func:`column_bitmap`'s tables; ``spare`` where unmapped.
+
+    Two reads per bit from tables of bits / 32 bytes (in cache for widths
+    up to a few million), where a binary search in the column map waits
+    for a dozen cache misses per bit.
+    """
+    out = np.empty(q_bits.shape[0], dtype=np.int64)
+    one = np.uint64(1)
+    for t in range(q_bits.shape[0]):
+        b = q_bits[t]
+        w = words[b >> 6]
+        bit = one << np.uint64(b & 63)
+        out[t] = rank[b >> 6] + popcount64(w & (bit - one)) if w & bit else spare
+    return out
+
+
+@kernel
+def nearest_from_postings(q_cols, post, block_indptr, block_lo, detectors, removed, n_rows, k):
+    """The k live rows of greatest overlap with one query (ties to the lower row), counted from its postings.
 
     Valid only when every detector samples its whole code: then detector
     ``row * detectors`` alone holds all of its row's bits, and counting its
-    postings over the query's columns is the overlap. Blocks run in
-    parallel (each owns its rows' counts). O(query postings + rows).
+    postings over the query's columns is the overlap. Only the rows the
+    query touches are ranked; rows of overlap 0 fill up from the lowest
+    live row. Returns ``(rows, overlaps)``. O(query postings · log + rows
+    for the zeroed counts).
     """
-    out = np.zeros(n_rows, dtype=np.int64)
-    n_blocks = block_lo.shape[0]
-    for k in prange(n_blocks):
-        lo = block_lo[k]
+    total = 0
+    for b in range(block_lo.shape[0]):
+        for t in range(q_cols.shape[0]):
+            total += block_indptr[b, q_cols[t] + 1] - block_indptr[b, q_cols[t]]
+    counts = np.zeros(n_rows, dtype=np.int32)
+    touched = np.empty(total, dtype=np.int64)
+    n = 0
+    for b in range(block_lo.shape[0]):
+        lo = block_lo[b]
         for t in range(q_cols.shape[0]):
             c = q_cols[t]
-            for p in range(block_indptr[k, c], block_indptr[k, c + 1]):
+            for p in range(block_indptr[b, c], block_indptr[b, c + 1]):
                 d = lo + np.int64(post[p])
-                if detectors == 1:
-                    out[d] += 1
-                elif d % detectors == 0:
-                    out[d // detectors] += 1
-    return out
+                if detectors != 1 and d % detectors != 0:
+                    continue
+                r = d // detectors
+                if counts[r] == 0 and not removed[r]:
+                    touched[n] = r
+                    n += 1
+                counts[r] += 1
+    top = q_cols.shape[0] + 1
+    keys = np.empty(n, dtype=np.int64)
+    for i in range(n):
+        keys[i] = (top - counts[touched[i]]) * n_rows + touched[i]   # overlap descending, then row ascending
+    order = np.argsort(keys)
+    take = min(k, n)
+    rows = np.empty(k, dtype=np.int64)
+    overlaps = np.zeros(k, dtype=np.int64)
+    for i in range(take):
+        rows[i] = touched[order[i]]
+        overlaps[i] = counts[rows[i]]
+    r = 0
+    while take < k and r < n_rows:
+        if counts[r] == 0 and not removed[r]:
+            rows[take] = r
+            take += 1
+        r += 1
+    return rows[:take], overlaps[:take]
 
 
 @kernel

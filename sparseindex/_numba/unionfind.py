@@ -3,8 +3,8 @@
 Kernels only (arrays in, arrays out, no validation); :mod:`sparseindex.near_duplicates`
 validates and calls them.
 
-* Exact copies: rows are hashed (splitmix64 fold of their words), sorted by
-  hash, and rows of one hash compared word by word, so a hash collision
+* Exact copies: rows are hashed (splitmix64 fold of their words or set-bit
+  indices), sorted by hash, and rows of one hash compared, so a hash collision
   never merges two different codes.
 * Components: union–find with path halving, the smaller index always the
   root (Tarjan, "Efficiency of a good but not linear set union algorithm",
@@ -23,37 +23,36 @@ from __future__ import annotations
 import numpy as np
 
 from .config import kernel
-from .kernels import mix64
+from .kernels import row_hash, rows_equal
 
 __all__ = ["row_hashes", "exact_copy_owners", "component_roots", "greedy_first"]
 
 
 @kernel
-def row_hashes(words):
-    """A 64-bit hash of every packed row (splitmix64 fold over its words).
+def row_hashes(table):
+    """A 64-bit hash of every row of a row table (``kernels.row_hash``).
 
-    Equal rows hash alike; callers still compare words, so a collision
-    never merges two different rows. O(rows · words).
+    Equal rows hash alike; callers still compare rows, so a collision
+    never merges two different codes. O(rows · words or set bits).
 
     Examples
     --------
-    >>> h = row_hashes(np.array([[1, 2], [1, 2], [3, 0]], dtype=np.uint64))
+    >>> from sparseindex.codes import packed_table
+    >>> h = row_hashes(packed_table(np.array([[1, 2], [1, 2], [3, 0]], dtype=np.uint64)))
     >>> bool(h[0] == h[1]), bool(h[0] == h[2])
     (True, False)
     """
-    n = words.shape[0]
+    words, indptr, _ = table
+    n = words.shape[0] if indptr.shape[0] == 0 else indptr.shape[0] - 1
     out = np.empty(n, dtype=np.uint64)
     for r in range(n):
-        h = np.uint64(words.shape[1])
-        for w in range(words.shape[1]):
-            h = mix64(h ^ words[r, w])
-        out[r] = h
+        out[r] = row_hash(table, r)
     return out
 
 
 @kernel
-def exact_copy_owners(order, later, words):
-    """``owner[r]``: the smallest row whose words equal row r's (r itself if none).
+def exact_copy_owners(order, later, table):
+    """``owner[r]``: the smallest row equal to row r (r itself if none), rows of a row table.
 
     ``order`` sorts the rows by hash *stably*, so inside a run of one hash
     the rows come in index order and the first of each distinct code is
@@ -63,14 +62,14 @@ def exact_copy_owners(order, later, words):
     Examples
     --------
     >>> from sparseindex._numba.banding import run_pair_counts
-    >>> words = np.array([[5], [7], [5], [5]], dtype=np.uint64)
-    >>> h = row_hashes(words)
+    >>> from sparseindex.codes import packed_table
+    >>> table = packed_table(np.array([[5], [7], [5], [5]], dtype=np.uint64))
+    >>> h = row_hashes(table)
     >>> order = np.argsort(h, kind="stable")
-    >>> exact_copy_owners(order, run_pair_counts(h[order]), words).tolist()
+    >>> exact_copy_owners(order, run_pair_counts(h[order]), table).tolist()
     [0, 1, 0, 0]
     """
     n = order.shape[0]
-    n_words = words.shape[1]
     owner = np.empty(n, dtype=np.int64)
     p = 0
     while p < n:
@@ -82,12 +81,7 @@ def exact_copy_owners(order, later, words):
                 h = order[s]
                 if owner[h] != h:
                     continue
-                same = True
-                for w in range(n_words):
-                    if words[h, w] != words[r, w]:
-                        same = False
-                        break
-                if same:
+                if rows_equal(table, h, r):
                     owner[r] = h
                     break
         p = q

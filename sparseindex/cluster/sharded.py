@@ -10,7 +10,7 @@ from contextlib import contextmanager
 import numpy as np
 
 from .. import health, validation
-from ..codes import adopt_words, packed_words
+from ..codes import Codes
 from ..errors import StoreFormatError
 from ..model.planner import plan as make_plan
 from ..store.contract import Params, StoreBase
@@ -211,11 +211,15 @@ class ShardedStore(StoreBase):
         live = np.ones(ids.shape[0], dtype=bool)
         for k, pos in routes.items():
             live[pos] = got[k][0]
-        words = np.zeros((ids.shape[0], (self.bits + 63) // 64), dtype=np.uint64)
-        if live.all():
-            for k, pos in routes.items():
-                words[pos] = packed_words(got[k][1])
-        return adopt_words(words, self.bits), live
+        if not live.all():
+            return None, live  # the contract raises for the first id not stored
+        if not routes:
+            return Codes.from_indices([], bits=self.bits), live
+        positions = np.concatenate([pos for pos in routes.values()])
+        gathered = Codes.concat([got[k][1] for k in routes])   # in each code's own form: wide codes stay sparse
+        order = np.empty_like(positions)
+        order[positions] = np.arange(positions.shape[0])
+        return gathered[order], live
 
     def _live_ids(self):
         parts = self._fan("ids")

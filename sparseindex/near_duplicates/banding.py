@@ -40,6 +40,7 @@ from .._numba import kernels as _kernels
 from .._numba.banding import band_keys_kernel, gather_matches, pair_overlaps, run_pair_counts, verify_positions
 from .._numba.config import PARALLEL_LOCK, thread_count
 from .._numba.kernels import mix64
+from ..codes import Codes, row_table
 
 __all__ = [
     "s_curve",
@@ -91,17 +92,22 @@ COST = {
 # ---------------------------------------------------------------------------
 
 
-def bit_usage(words, bits):
-    """How many rows set each bit (kernel ``bit_usage``).
+def bit_usage(codes: Codes) -> np.ndarray:
+    """How many codes set each bit that any of them sets, in bit order (kernel ``bit_usage`` for packed codes).
+
+    Sized by the bits in use, never by the width.
 
     Examples
     --------
-    >>> bit_usage(np.array([[0b0111], [0b1110]], dtype=np.uint64), 4).tolist()
-    [1, 2, 2, 1]
+    >>> bit_usage(Codes.from_indices([[0, 1, 2], [1, 2, 3], [9]], bits=16)).tolist()
+    [1, 2, 2, 1, 1]
     """
-    none = np.zeros(0, dtype=np.int64)
-    with PARALLEL_LOCK:
-        return _kernels.bit_usage(words, none, none.astype(bool))[:bits]
+    if codes.layout == "packed":
+        none = np.zeros(0, dtype=np.int64)
+        with PARALLEL_LOCK:
+            counts = _kernels.bit_usage(row_table(codes)[0], none, none.astype(bool))[: codes.bits]
+        return counts[counts > 0]
+    return np.unique(row_table(codes)[2], return_counts=True)[1].astype(np.int64)
 
 
 def s_curve(similarity, bands: int, rows: int):
@@ -252,20 +258,19 @@ def choose_bands(worst_jaccard, recall, *, codes, set_bits, moments, threads=Non
     return best
 
 
-def similarity_moments(words, weights, *, max_rows=MAX_ROWS, samples=200_000, seed=0) -> np.ndarray:
+def similarity_moments(codes: Codes, *, max_rows=MAX_ROWS, samples=200_000, seed=0) -> np.ndarray:
     """E[J**r] for r = 1..``max_rows`` over random distinct pairs of rows.
 
     Every pair when there are at most ``samples`` of them, else a seeded
     sample of ``samples`` pairs. Feeds the expected candidate count of the
-    work model. O(samples · words per code).
+    work model. O(samples · words or set bits per code).
 
     Examples
     --------
-    >>> w = np.array([[0b0111], [0b1110]], dtype=np.uint64)
-    >>> similarity_moments(w, np.array([3, 3]), max_rows=2).tolist()
+    >>> similarity_moments(Codes.from_indices([[0, 1, 2], [1, 2, 3]], bits=4), max_rows=2).tolist()
     [0.5, 0.25]
     """
-    n = words.shape[0]
+    n, weights = len(codes), codes.weights
     if n < 2:
         return np.zeros(max_rows)
     total = n * (n - 1) // 2
@@ -278,7 +283,7 @@ def similarity_moments(words, weights, *, max_rows=MAX_ROWS, samples=200_000, se
         hi += hi >= lo
     lo = lo.astype(np.int64)
     hi = hi.astype(np.int64)
-    ov = pair_overlaps(words, lo, hi).astype(np.float64)
+    ov = pair_overlaps(row_table(codes), lo, hi).astype(np.float64)
     union = weights[lo].astype(np.float64) + weights[hi] - ov
     j = np.divide(ov, union, out=np.zeros_like(ov), where=union > 0)
     powers = j[None, :] ** np.arange(1, max_rows + 1)[:, None]
@@ -308,8 +313,8 @@ def hash_salts(seed: int, count: int) -> np.ndarray:
 # ---------------------------------------------------------------------------
 
 
-def band_keys(words, weights, *, bands, rows, seed, progress=None) -> np.ndarray:
-    """Band keys of packed codes, shape (bands, codes), uint64 (kernel ``band_keys_kernel``).
+def band_keys(codes: Codes, *, bands, rows, seed, progress=None) -> np.ndarray:
+    """Band keys of codes, shape (bands, codes), uint64 (kernel ``band_keys_kernel``).
 
     A code's keys depend only on its set bits, ``seed``, ``bands`` and
     ``rows``, never on its position in the batch. Signatures are computed
@@ -318,17 +323,16 @@ def band_keys(words, weights, *, bands, rows, seed, progress=None) -> np.ndarray
 
     Examples
     --------
-    >>> w = np.array([[0b1011], [0b1011], [0b0100]], dtype=np.uint64)
-    >>> k = band_keys(w, np.array([3, 3, 1]), bands=2, rows=2, seed=1)
+    >>> k = band_keys(Codes.from_indices([[0, 1, 3], [0, 1, 3], [2]], bits=4), bands=2, rows=2, seed=1)
     >>> k.shape, bool((k[:, 0] == k[:, 1]).all()), bool((k[:, 0] != k[:, 2]).any())
     ((2, 3), True, True)
     """
-    n = words.shape[0]
+    n = len(codes)
     salts = hash_salts(seed, bands * rows)
     keys = np.empty((bands, n), dtype=np.uint64)
     for c0 in range(0, n, SIGNATURE_CHUNK):
         c1 = min(n, c0 + SIGNATURE_CHUNK)
-        indptr, indices = _kernels.unpack_indices(words[c0:c1], weights[c0:c1].astype(np.int64))
+        indptr, indices = codes[c0:c1].to_csr()
         with PARALLEL_LOCK:
             keys[:, c0:c1] = band_keys_kernel(indptr, indices, salts, bands, rows)
         if progress is not None:
@@ -336,7 +340,7 @@ def band_keys(words, weights, *, bands, rows, seed, progress=None) -> np.ndarray
     return keys
 
 
-def _band_matches(keys_j, words, min_overlap):
+def _band_matches(keys_j, table, min_overlap):
     """Verified pairs among codes sharing a key in one band; also the candidates checked."""
     order = np.argsort(keys_j, kind="stable")
     counts = run_pair_counts(keys_j[order])
@@ -355,14 +359,14 @@ def _band_matches(keys_j, words, min_overlap):
         total = int(per[start:stop].sum())
         out = np.empty(total, dtype=np.int64)
         with PARALLEL_LOCK:
-            verify_positions(order, pos, offsets, counts, words, out)
+            verify_positions(order, pos, offsets, counts, table, out)
         found.append(gather_matches(order, pos, offsets, counts, out, min_overlap))
         checked += total
         start = stop
     return found, checked
 
 
-def candidate_pairs(words, weights, *, min_overlap, bands, rows, seed, progress=None):
+def candidate_pairs(codes: Codes, *, min_overlap, bands, rows, seed, progress=None):
     """Every pair of rows that shares a band key and overlaps by >= ``min_overlap``.
 
     Returns ``(lo, hi, overlap, candidates)``: distinct pairs ``lo < hi``
@@ -374,22 +378,23 @@ def candidate_pairs(words, weights, *, min_overlap, bands, rows, seed, progress=
     chunks (stage ``"signatures"``) and bands (``"bands"``).
 
     Cost: O(set bits · bands · rows) hashing, ``bands`` sorts of the codes,
-    one AND + popcount per candidate.
+    one exact overlap per candidate (AND + popcount, or a merge of index rows).
 
     Examples
     --------
-    >>> w = np.array([[0b1111], [0b0111], [0b10000]], dtype=np.uint64)
-    >>> lo, hi, ov, _ = candidate_pairs(w, np.array([4, 3, 1]), min_overlap=3, bands=8, rows=1, seed=0)
+    >>> codes = Codes.from_indices([[0, 1, 2, 3], [0, 1, 2], [4]], bits=8)
+    >>> lo, hi, ov, _ = candidate_pairs(codes, min_overlap=3, bands=8, rows=1, seed=0)
     >>> lo.tolist(), hi.tolist(), ov.tolist()
     ([0], [1], [3])
     """
-    n = words.shape[0]
+    n = len(codes)
+    table = row_table(codes)
     step = None if progress is None else (lambda done, total: progress("signatures", done, total))
-    keys = band_keys(words, weights, bands=bands, rows=rows, seed=seed, progress=step)
+    keys = band_keys(codes, bands=bands, rows=rows, seed=seed, progress=step)
     pieces = []
     checked = 0
     for j in range(bands):
-        found, c = _band_matches(keys[j], words, min_overlap)
+        found, c = _band_matches(keys[j], table, min_overlap)
         pieces.extend(found)
         checked += c
         if progress is not None:
@@ -405,7 +410,7 @@ def candidate_pairs(words, weights, *, min_overlap, bands, rows, seed, progress=
     return flat // n, flat % n, ov[first], checked
 
 
-def index_seconds(words, bits, *, threads=None) -> float:
+def index_seconds(codes: Codes, *, threads=None) -> float:
     """Work model of the exact index over these rows, in seconds.
 
     Adding the rows chunk by chunk and querying each chunk against the rows
@@ -415,11 +420,11 @@ def index_seconds(words, bits, *, threads=None) -> float:
 
     Examples
     --------
-    >>> w = np.array([[0b0111], [0b1110]], dtype=np.uint64)   # bit usage 1, 2, 2, 1
-    >>> index_seconds(w, 4, threads=1) == COST["posting"] * (1 + 4 + 4 + 1) / 2 + COST["add"] * 6
+    >>> codes = Codes.from_indices([[0, 1, 2], [1, 2, 3]], bits=4)   # bit usage 1, 2, 2, 1
+    >>> index_seconds(codes, threads=1) == COST["posting"] * (1 + 4 + 4 + 1) / 2 + COST["add"] * 6
     True
     """
     threads = threads or thread_count()
-    usage = bit_usage(words, bits).astype(np.float64)
+    usage = bit_usage(codes).astype(np.float64)
     updates = float((usage * usage).sum()) / 2.0
     return COST["posting"] * updates / threads + COST["add"] * float(usage.sum())

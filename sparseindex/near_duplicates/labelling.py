@@ -61,7 +61,7 @@ from . import banding as _banding
 from .._numba import unionfind as _unionfind
 from .._numba.config import thread_count
 from .. import validation
-from ..codes import Codes, adopt_words, as_codes, packed_words
+from ..codes import Codes, as_codes, row_table
 from ..store import Store
 
 __all__ = ["label_near_duplicates", "NearDuplicateSummary", "TqdmProgress", "planted_duplicates", "EXACT_BUDGET_SECONDS"]
@@ -316,14 +316,14 @@ class TqdmProgress:
 # ---------------------------------------------------------------------------
 
 
-def _distinct(words, weights, min_overlap):
+def _distinct(batch: Codes, min_overlap):
     """Distinct heavy-enough codes: (uid per code or -1, first index per unique, copies)."""
-    n = words.shape[0]
+    n, weights = len(batch), batch.weights
     uid = np.full(n, -1, dtype=np.int64)
     heavy = np.flatnonzero(weights >= min_overlap)
     if heavy.size == 0:
         return uid, np.zeros(0, dtype=np.int64), 0
-    sub = np.ascontiguousarray(words[heavy])
+    sub = row_table(batch[heavy])
     hashes = _unionfind.row_hashes(sub)
     order = np.argsort(hashes, kind="stable")
     owner = _unionfind.exact_copy_owners(order, _banding.run_pair_counts(hashes[order]), sub)
@@ -359,16 +359,16 @@ def _index_pairs(codes_u: Codes, min_overlap, progress):
     return lo[order], hi[order], ov[order], hits_total
 
 
-def _choose(method, recall, bands, words_u, weights_u, bits, min_overlap, seed):
+def _choose(method, recall, bands, codes_u, min_overlap, seed):
     """Which method runs, why, its band choice, the predicted seconds, the worst Jaccard."""
-    u = words_u.shape[0]
+    u, weights_u = len(codes_u), codes_u.weights
     threads = thread_count()
     predicted = {}
     heaviest = np.sort(weights_u)[-2:] if u >= 2 else None
     worst = _banding.jaccard_floor(min_overlap, int(heaviest[0]), int(heaviest[1])) if u >= 2 else None
     if method == "index" or (method == "auto" and bands is None and (u < 2 or recall >= 1.0)):
         if u >= 2:
-            predicted["index"] = _banding.index_seconds(words_u, bits, threads=threads)
+            predicted["index"] = _banding.index_seconds(codes_u, threads=threads)
         why = "requested" if method == "index" else (
             "fewer than two distinct codes can match" if u < 2 else "recall=1 needs the exact index")
         return "index", why, None, predicted, worst
@@ -376,7 +376,7 @@ def _choose(method, recall, bands, words_u, weights_u, bits, min_overlap, seed):
         b, r = bands
         choice = None
         if u >= 2:
-            moments = _banding.similarity_moments(words_u, weights_u, max_rows=r, seed=seed)
+            moments = _banding.similarity_moments(codes_u, max_rows=r, seed=seed)
             cand, secs = _banding.banding_seconds(
                 b, r, codes=u, set_bits=float(weights_u.sum()), moment=moments[r - 1], threads=threads
             )
@@ -389,7 +389,7 @@ def _choose(method, recall, bands, words_u, weights_u, bits, min_overlap, seed):
         return "banding", "requested", _banding.BandChoice(1, 1, 0.0, 1.0, 0.0, 0.0), predicted, worst
     if recall >= 1.0:
         raise ValueError("label_near_duplicates: recall=1 cannot be promised by banding; use method='index' or recall < 1")
-    moments = _banding.similarity_moments(words_u, weights_u, seed=seed)
+    moments = _banding.similarity_moments(codes_u, seed=seed)
     choice = _banding.choose_bands(worst, recall, codes=u, set_bits=float(weights_u.sum()), moments=moments,
                                    threads=threads)
     if choice is not None:
@@ -402,7 +402,7 @@ def _choose(method, recall, bands, words_u, weights_u, bits, min_overlap, seed):
                 f"{int(heaviest[1])} and {int(heaviest[0])} set bits); use method='index' or a lower recall"
             )
         return "banding", "requested", choice, predicted, worst
-    idx = _banding.index_seconds(words_u, bits, threads=threads)
+    idx = _banding.index_seconds(codes_u, threads=threads)
     predicted["index"] = idx
     if choice is None:
         return "index", (
@@ -523,20 +523,18 @@ def _label(batch, request, clock, callback):
     """Labels, and what the summary reports of how they were found."""
     m = request.min_overlap
     with clock.lap("copies"):
-        words, weights = packed_words(batch), batch.weights
-        uid, first, copies = _distinct(words, weights, m)
-        words_u = np.ascontiguousarray(words[first])
-        weights_u = weights[first]
+        uid, first, copies = _distinct(batch, m)
+        codes_u = batch[first]
+        weights_u = codes_u.weights
     with clock.lap("choice"):
         picked, reason, choice, predicted, worst = _choose(
-            request.method, request.recall, request.bands, words_u, weights_u, batch.bits, m, request.seed)
+            request.method, request.recall, request.bands, codes_u, m, request.seed)
     with clock.lap("pairs"):
         if picked == "index":
-            lo, hi, ov, checked = _index_pairs(adopt_words(words_u, batch.bits), m, callback)
+            lo, hi, ov, checked = _index_pairs(codes_u, m, callback)
         else:
             lo, hi, ov, checked = _banding.candidate_pairs(
-                words_u, weights_u, min_overlap=m, bands=choice.bands, rows=choice.rows, seed=request.seed,
-                progress=callback)
+                codes_u, min_overlap=m, bands=choice.bands, rows=choice.rows, seed=request.seed, progress=callback)
     with clock.lap("grouping"):
         labels = _labels(request.mode, uid, first, weights_u, lo, hi, ov)
     found = dict(picked=picked, reason=reason, choice=choice, predicted=predicted, worst=worst, copies=copies,

@@ -506,7 +506,7 @@ class StoreBase(HealthMixin):
         with self._reading("nearest"):
             if k == 0 or len(self) == 0:
                 return Hits(np.zeros(0, np.int64), np.zeros(0, np.int64))
-            best = self._nearest(q, k)
+            best = self._nearest(q, min(k, len(self)))
         return Hits(best.ids[:k], best.overlaps[:k])
 
     def get(self, ids) -> Codes:

@@ -304,11 +304,11 @@ class Store(StoreBase):
         table = self._table
         q_bits = q.to_csr()[1]
         if self._bank.whole_codes:  # count from the postings: the cost follows the query's bits
-            overlaps = self._bank.overlaps(q_bits)
-        else:
-            with PARALLEL_LOCK:
-                kernel_table = table.kernel_table()
-                overlaps = kernels.overlaps_with_all(query_words(q, kernel_table)[0], q_bits, kernel_table, table.rows)
+            rows, overlaps = self._bank.nearest(q_bits, table.removed, k)
+            return Hits(table.ids_of(rows), overlaps)
+        with PARALLEL_LOCK:
+            kernel_table = table.kernel_table()
+            overlaps = kernels.overlaps_with_all(query_words(q, kernel_table)[0], q_bits, kernel_table, table.rows)
         rows = kernels.top_k(overlaps, table.removed, k, q_bits.shape[0])
         return Hits(table.ids_of(rows), overlaps[rows])
 
