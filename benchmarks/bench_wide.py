@@ -28,6 +28,11 @@ Run from the project root::
 
     PYTHONPATH=. python benchmarks/bench_wide.py --out benchmarks/results_wide.md
     PYTHONPATH=. python benchmarks/bench_wide.py --quick      # CI smoke run
+    PYTHONPATH=. python benchmarks/bench_wide.py --rss 1e6    # peak memory of building 10^6 codes of 2^20/300
+
+``--rss N`` builds only the 2^20-bit rung (300 set bits, in batches of
+10^5, no peers) and prints the process's peak RSS (``VmHWM``) beside the
+store's final bytes, then queries it.
 """
 
 from __future__ import annotations
@@ -61,6 +66,7 @@ def parse_args(argv):
     p.add_argument("--queries", type=int, default=100, help="single queries timed per rung (default 100)")
     p.add_argument("--quick", action="store_true", help="CI smoke run: N = 2,000, few queries")
     p.add_argument("--out", default=None, help="also write the Markdown report here")
+    p.add_argument("--rss", default=None, help="only build N codes of 2^20 bits / 300 set and report peak RSS")
     return p.parse_args(argv)
 
 
@@ -156,8 +162,39 @@ def report(rows, machine) -> str:
             + common.markdown_table(head, table) + "\n")
 
 
+def peak_rss_bytes() -> int:
+    """The process's peak resident set (Linux ``VmHWM``), or 0 where it cannot be read."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as f:
+            for line in f:
+                if line.startswith("VmHWM:"):
+                    return int(line.split()[1]) * 1024
+    except OSError:
+        pass
+    return 0
+
+
+def rss_run(n: int) -> int:
+    bits, weight, sample_size, threshold = RUNGS[-1]
+    before = peak_rss_bytes()
+    store = Store(bits, threshold=threshold, sample_size=sample_size, seed=1)
+    t0 = time.perf_counter()
+    for a in range(0, n, BATCH):
+        store.add(Codes.random(min(BATCH, n - a), bits, weight, seed=a + bits))
+    built = time.perf_counter() - t0
+    q = Codes.random(1, bits, weight, seed=n + 1)
+    store.query(q)
+    peak = peak_rss_bytes()
+    print(f"N={n:,} bits={bits:,}/{weight}: built in {built:.1f} s ({n / built:,.0f} codes/s); store "
+          f"{store.nbytes / 1e9:.2f} GB ({store.nbytes / n:,.0f} B/code); peak RSS {peak / 1e9:.2f} GB "
+          f"({(peak - before) / store.nbytes:.2f}x the store's final bytes above the {before / 1e9:.2f} GB at start)")
+    return 0
+
+
 def main(argv=None) -> int:
     args = parse_args(argv)
+    if args.rss:
+        return rss_run(int(float(args.rss)))
     sizes = [2_000] if args.quick else [int(float(x)) for x in args.sizes.split(",")]
     n_queries = 10 if args.quick else args.queries
     rng = np.random.default_rng(7)

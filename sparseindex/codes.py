@@ -422,7 +422,8 @@ class Codes:
         weight = validation.integer("weight", weight, minimum=0, maximum=bits, what="Codes.random")
         seed = validation.integer("seed", seed, minimum=0, maximum=validation.SEED_LIMIT - 1, what="Codes.random")
         if _sparse_is_smaller(bits, count, count * weight):
-            flat = _kernels.random_indices(count, bits, weight, np.uint64(seed))
+            flat = _kernels.random_indices(count, bits, weight, np.uint64(seed),
+                                           np.empty(count * weight, dtype=index_dtype(bits)))
             return cls._adopt_csr(np.arange(0, count * weight + 1, max(weight, 1), dtype=np.int64)[: count + 1]
                                   if weight else np.zeros(count + 1, dtype=np.int64), flat, bits)
         return cls._wrap(_kernels.random_words(count, bits, weight, np.uint64(seed)), bits)

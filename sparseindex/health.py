@@ -59,10 +59,12 @@ UNKNOWN = "unknown"
 USAGE_MIN_COUNT = 30
 #: Stored codes whose detector samples the usage-aware estimate evaluates.
 USAGE_SAMPLE = 256
-#: Sigmas by which the usage-aware chance must exceed the uniform one to count.
-USAGE_SIGMAS = 3.0
-#: ... and the relative excess it must have (smaller differences do not matter).
+#: The relative excess over the uniform chance the usage-aware one must have to count
+#: (smaller differences do not matter).
 USAGE_MARGIN = 0.10
+#: A status moves back down (saturated -> filling -> healthy) only once the store is
+#: this fraction below the line it crossed, so a noisy estimate cannot make it flap.
+STATUS_HYSTERESIS = 0.05
 
 
 def _finite(x):
@@ -311,6 +313,7 @@ class HealthMemo:
     def __init__(self):
         self.uniform = {}
         self.usage = None  # (churn at estimate, items, query_weight, (UsageFalseHits, shrinkage))
+        self.last = None  # (limit_basis, status) of the last report: the hysteresis of both
 
 
 def summed_usage(parts) -> tuple:
@@ -392,7 +395,9 @@ def _usage_estimate(stats, samples, memo, q, refresh_fraction, force):
         then, then_items, then_q, estimate = memo.usage
         if then_q == q and abs(churn - then) < max(1, refresh_fraction * max(items, then_items)):
             return churn - then, estimate
-    codes = samples(USAGE_SAMPLE, seed=churn)
+    # the codes are chosen by the store's contents (its size), never by its history, so a
+    # reloaded store evaluates the same codes as the process that saved it
+    codes = samples(USAGE_SAMPLE, seed=items)
     freqs, lam = usage_frequencies(stats.per_bit_usage(), items)
     p = model.usage_bernoulli(freqs, q)
     estimate = model.usage_false_hits(p, codes, stats.threshold, q, items)
@@ -431,22 +436,32 @@ def compute(stats: StoreStats, samples, memo: HealthMemo, *, false_hit=None, war
     if q is not None:
         per_uniform, cap_uniform = _uniform(stats, memo, q, target)
     est = _usage_estimate(stats, samples, memo, q, refresh_fraction, refresh)
-    return derive(
+    report = derive(
         bits=stats.bits, threshold=stats.threshold, sample_size=stats.sample_size, detectors=stats.detectors,
         plan=stats.plan, target=target, warn=warn, usage=stats.usage, hist=stats.weight_hist, items=stats.items,
         removed_pending=stats.removed_pending, q=q, per_uniform=per_uniform, cap_uniform=cap_uniform, estimate=est,
         measurement=stats.measurement, served=stats.served, memory=stats.memory_bytes, started=started,
+        last=memo.last,
     )
+    memo.last = (report.limit_basis, report.status)
+    return report
 
 
 def derive(*, bits, threshold, sample_size, detectors, plan, target, warn, usage, hist, items, removed_pending, q,
-           per_uniform, cap_uniform, estimate, measurement, served, memory, started) -> Health:
+           per_uniform, cap_uniform, estimate, measurement, served, memory, started, last=None) -> Health:
     """A :class:`Health` from gathered inputs; one store or many shards alike.
 
     ``usage`` and ``hist`` are the live codes' per-bit counts and weight
     histogram, ``per_uniform``/``cap_uniform`` the uniform model's figures
     for query weight ``q``, ``estimate`` None or ``(changes since,
-    (UsageFalseHits, shrinkage))``.
+    (UsageFalseHits, shrinkage))``; ``last`` the ``(limit_basis, status)`` of
+    the previous report, or None.
+
+    The usage-aware estimate becomes the basis when the low end of its
+    bootstrap interval exceeds the uniform chance by ``USAGE_MARGIN``, and
+    stays it until the high end no longer does (a band, not a coin toss on
+    one noisy mean); the status moves down only ``STATUS_HYSTERESIS`` below
+    the line it crossed.
     """
     w_min, w_mean, w_max = _weights(hist)
     per_usage = se_usage = cap_usage = None
@@ -458,15 +473,21 @@ def derive(*, bits, threshold, sample_size, detectors, plan, target, warn, usage
             cap_usage = model.code_limit(min(1.0, per_usage), target) if per_usage > 0 else math.inf
     basis = "uniform"
     per_op, cap = per_uniform, cap_uniform
-    if (per_usage is not None and per_uniform is not None
-            and per_usage - USAGE_SIGMAS * (se_usage or 0.0) > per_uniform
-            and per_usage > (1 + USAGE_MARGIN) * per_uniform):
-        basis, per_op, cap = "usage", per_usage, cap_usage
+    if per_usage is not None and per_uniform is not None:
+        bound = e.per_code_high if last is not None and last[0] == "usage" else e.per_code_low
+        if math.isnan(bound):
+            bound = per_usage
+        if bound > (1 + USAGE_MARGIN) * per_uniform:
+            basis, per_op, cap = "usage", per_usage, cap_usage
     status, headroom, headroom_frac, fill = UNKNOWN, None, None, None
     if target is not None and items == 0:
         status = "healthy"  # nothing stored yet: no weight to size the model with, no false hit possible
     if cap is not None:
         status = classify(items, cap, warn)
+        if last is not None and last[1] in STATUSES and STATUSES.index(status) < STATUSES.index(last[1]):
+            # down only once clearly below the line crossed; otherwise keep the level
+            slack = items / (1 - STATUS_HYSTERESIS)
+            status = max(status, classify(slack, cap, warn), key=STATUSES.index)
         headroom = max(0.0, float(cap) - items) if math.isfinite(cap) else math.inf
         headroom_frac = headroom / cap if cap and math.isfinite(cap) else (1.0 if cap else 0.0)
         fill = items / cap if cap and math.isfinite(cap) else (0.0 if cap else math.inf)

@@ -15,6 +15,7 @@ import pytest
 from scipy import stats
 
 from sparseindex import SaturationWarning, Codes, Store, model
+from sparseindex.health import STATUSES
 
 
 def zipf_codes(n, bits, weight, exponent, seed):
@@ -275,3 +276,42 @@ def test_a_writer_never_waits_for_a_report_being_modelled():
     h = store.health(refresh=True)
     assert finished and len(finished[0]) == 10
     assert h.usage_codes_sampled > 0 and len(store) == 5_010
+
+
+def _skewed_codes(n, bits, weight, exponent, seed):
+    """Codes whose bits are drawn without replacement with probability proportional to rank**-exponent.
+
+    Drawn by the exponential-keys method (Efraimidis & Spirakis, "Weighted random sampling with a
+    reservoir", Inf. Process. Lett. 2006): the ``weight`` largest ``u ** (1 / p)`` are a draw without
+    replacement by successive sampling proportional to ``p``.
+    """
+    rng = np.random.default_rng(seed)
+    p = np.arange(1, bits + 1, dtype=float) ** -exponent
+    p /= p.sum()
+    rows = []
+    for a in range(0, n, 5_000):
+        keys = np.log(rng.random((min(5_000, n - a), bits))) / p
+        rows.extend(np.argpartition(-keys, weight, axis=1)[:, :weight])
+    return Codes.from_indices(rows, bits=bits)
+
+
+def test_on_skewed_codes_the_status_does_not_flap_and_survives_a_reload(tmp_path):
+    # the scenario of the report that found the flapping: rank**-0.9 usage over 1,024 bits
+    codes = _skewed_codes(60_000, 1024, 30, 0.9, seed=1)
+    store = Store.for_target(1024, 30, false_hit=1e-6, capacity=100_000, noise=0.2, seed=3)
+    levels = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", SaturationWarning)
+        for a in range(0, 60_000, 5_000):
+            store.add(codes[a : a + 5_000])
+            h = store.health()
+            levels.append((h.status, h.limit_basis))
+            # the status follows the estimate it chose: saturated exactly when that estimate is past the target
+            if h.status == "saturated":
+                assert h.false_hit_now > 1e-6
+    order = [STATUSES.index(s) for s, _ in levels]
+    assert order == sorted(order), levels            # never back down while filling
+    assert levels[-1] == ("saturated", "usage")      # its own usage estimate is far past 1e-6 per query
+    store.save(tmp_path / "skewed.sidx")
+    again = Store.load(tmp_path / "skewed.sidx").health()
+    assert (again.status, again.limit_basis) == levels[-1]

@@ -208,3 +208,25 @@ def test_the_invariant_checker_sees_a_posting_out_of_place(mapped):
     post[0], post[1] = post[1], post[0]   # two postings of one column, now out of order
     with pytest.raises(AssertionError, match="not strictly ascending|differ from the detector samples"):
         store._check()
+
+
+def test_row_kernels_on_index_rows_match_scipy_and_numpy():
+    # references: scipy.sparse S @ S.T for pair overlaps, numpy.unique over dense rows for exact copies
+    from sparseindex._numba import banding as banding_kernels
+    from sparseindex._numba import unionfind
+    from sparseindex.codes import row_table
+
+    base = Codes.random(12, 70_000, 30, seed=5)
+    codes = base[np.array([0, 1, 2, 1, 3, 0, 4, 5, 6, 2, 7, 8, 9, 10, 11, 3])]
+    assert codes.layout == "sparse"
+    table = row_table(codes)
+    S = codes.to_scipy().tocsr().astype(np.int64)
+    lo, hi = np.triu_indices(len(codes), 1)
+    assert np.array_equal(banding_kernels.pair_overlaps(table, lo, hi), (S @ S.T).toarray()[lo, hi])
+    hashes = unionfind.row_hashes(table)
+    for forced in (False, True):   # forced collisions: rows must still be told apart by their indices
+        h = hashes % np.uint64(2) if forced else hashes
+        order = np.argsort(h, kind="stable")
+        owner = unionfind.exact_copy_owners(order, banding_kernels.run_pair_counts(h[order]), table)
+        _, first, inverse = np.unique(codes.to_dense(), axis=0, return_index=True, return_inverse=True)
+        assert np.array_equal(owner, first[inverse.reshape(-1)])

@@ -417,14 +417,14 @@ def _ascending_below(values, start, end, limit):
 
 
 @kernel
-def random_indices(rows, bits, weight, seed):
-    """The codes of :func:`random_words` with the same arguments, as sorted CSR indices (int64, ``weight`` per row).
+def random_indices(rows, bits, weight, seed, out):
+    """The codes of :func:`random_words` with the same arguments, as sorted CSR indices (``weight`` per row).
 
     The same Floyd draws; set membership is an open-addressing table of
     twice the weight instead of the packed row, so memory follows the set
-    bits, not the width.
+    bits, not the width. Written into ``out`` (``rows * weight`` long, of
+    the caller's index type: no wider temporary).
     """
-    out = np.empty(rows * weight, dtype=np.int64)
     size = 1
     while size < 2 * weight:
         size *= 2
@@ -440,7 +440,7 @@ def random_indices(rows, bits, weight, seed):
             if _table_has(table, mask, v):
                 v = j
             _table_put(table, mask, v)
-            out[r * weight + n] = v
+            out[r * weight + n] = out.dtype.type(v)
             n += 1
         out[r * weight : (r + 1) * weight] = np.sort(out[r * weight : (r + 1) * weight])
     return out
@@ -1122,17 +1122,56 @@ def nearest_from_postings(q_cols, post, block_indptr, block_lo, detectors, remov
                     touched[n] = r
                     n += 1
                 counts[r] += 1
-    top = q_cols.shape[0] + 1
-    keys = np.empty(n, dtype=np.int64)
+    # the cut: the smallest overlap v >= 1 with fewer than k touched rows above it
+    top = q_cols.shape[0]
+    hist = np.zeros(top + 2, dtype=np.int64)
     for i in range(n):
-        keys[i] = (top - counts[touched[i]]) * n_rows + touched[i]   # overlap descending, then row ascending
-    order = np.argsort(keys)
-    take = min(k, n)
+        hist[counts[touched[i]]] += 1
+    above = 0
+    cut = top + 1
+    while cut > 1 and above + hist[cut - 1] < k:
+        above += hist[cut - 1]
+        cut -= 1
+    cut -= 1  # rows above ``cut`` are all taken; at ``cut`` the lowest rows fill up to k
     rows = np.empty(k, dtype=np.int64)
     overlaps = np.zeros(k, dtype=np.int64)
-    for i in range(take):
-        rows[i] = touched[order[i]]
-        overlaps[i] = counts[rows[i]]
+    take = 0
+    if above:
+        keys = np.empty(above, dtype=np.int64)
+        j = 0
+        for i in range(n):
+            c = counts[touched[i]]
+            if c > cut:
+                keys[j] = (top + 1 - c) * n_rows + touched[i]   # overlap descending, then row ascending
+                j += 1
+        keys.sort()
+        for i in range(above):
+            rows[i] = keys[i] % n_rows
+            overlaps[i] = counts[rows[i]]
+        take = above
+    if cut >= 1 and take < k:
+        need = min(k - take, hist[cut])
+        ties = np.empty(hist[cut], dtype=np.int64)
+        j = 0
+        for i in range(n):
+            if counts[touched[i]] == cut:
+                ties[j] = touched[i]
+                j += 1
+        if j > 4 * need + 64:   # many ties: the lowest rows by one pass over the counts, not a sort
+            r = 0
+            while need:
+                if counts[r] == cut and not removed[r]:
+                    rows[take] = r
+                    overlaps[take] = cut
+                    take += 1
+                    need -= 1
+                r += 1
+        else:
+            ties.sort()
+            for i in range(need):
+                rows[take] = ties[i]
+                overlaps[take] = cut
+                take += 1
     r = 0
     while take < k and r < n_rows:
         if counts[r] == 0 and not removed[r]:

@@ -50,6 +50,9 @@ COLUMN_MAP_MIN_BITS = 4096
 #: An empty column map, and the "no map" marker kernels take.
 NO_COLUMNS = np.zeros(0, dtype=np.int64)
 
+#: Set bits mapped to columns per step of an append (bounds its temporaries).
+MAP_CHUNK = 1 << 22
+
 #: A column map this dense or denser (mapped bits per bit of the width) is
 #: looked up through a bitmap with per-word ranks (bits / 32 bytes, about
 #: 8 bytes per mapped bit at most): two cached reads per query bit instead
@@ -236,7 +239,9 @@ class DetectorBank:
         old = self.columns
         seen = np.unique(indices).astype(np.int64)
         grown = old if np.isin(seen, old, assume_unique=True).all() else np.union1d(old, seen)
-        cols = np.searchsorted(grown, indices).astype(index_dtype(grown.shape[0] + 1))
+        cols = np.empty(indices.shape[0], dtype=index_dtype(grown.shape[0] + 1))
+        for a in range(0, indices.shape[0], MAP_CHUNK):  # in pieces: no batch-sized int64 temporary
+            cols[a : a + MAP_CHUNK] = np.searchsorted(grown, indices[a : a + MAP_CHUNK])
         col_table = (np.zeros((0, 1), dtype=np.uint64), indptr, cols)
         if grown is old:
             return old, col_table, self._block_indptr, self._bit_postings
