@@ -145,7 +145,8 @@ def _row_overlap(a, b):
 # Stored rows reach the kernels as a *row table* ``(words, indptr, indices)``:
 # packed rows in ``words`` (then ``indptr`` is empty), or each row's sorted
 # set-bit indices in ``indices[indptr[r]:indptr[r + 1]]`` (then ``words`` has no
-# rows). The three helpers below are the only code that tells them apart.
+# rows). The row helpers below (``_stored_*``, ``rows_*``, ``row_hash``) are the
+# only code that tells them apart.
 
 
 @inline_kernel

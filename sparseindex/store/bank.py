@@ -23,7 +23,8 @@ sorted bits that any stored code sets, column ``c`` being bit
 for every bit no code sets. Its per-block tables are then sized by the
 bits in use, not by the width: a 2^32-bit bank holding one code costs
 kilobytes. The map only grows (``compact`` rebuilds it); a query maps its
-bits with one binary search each.
+bits through a bitmap with per-word ranks when the map is dense, by binary
+search otherwise.
 
 This layer knows nothing of ids, codes or the store; it sees rows only.
 """
@@ -33,8 +34,8 @@ from __future__ import annotations
 import numpy as np
 
 from .._numba import kernels as _kernels
-from ..codes import index_dtype
 from .._numba.config import PARALLEL_LOCK, PARALLEL_SINGLE_QUERY, thread_count
+from ..codes import index_dtype
 
 #: Detector ids are int32 in results and int64 in kernels; keep them int32-sized.
 MAX_DETECTORS_TOTAL = 2**31 - 1
@@ -108,8 +109,8 @@ class DetectorBank:
         if not 1 <= block_span <= 2**16:
             raise ValueError(f"block_span={block_span} must be in 1..65536")
         #: the column map (ascending bits), or None: column b is bit b
-        self.columns = (NO_COLUMNS if bits > COLUMN_MAP_MIN_BITS else None) if column_map is None else (
-            NO_COLUMNS if column_map else None)
+        mapped = bits > COLUMN_MAP_MIN_BITS if column_map is None else column_map
+        self.columns = NO_COLUMNS if mapped else None
         self.bits = bits
         self.threshold = threshold
         self.sample_size = sample_size

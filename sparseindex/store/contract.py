@@ -199,8 +199,8 @@ class HealthMixin:
             with self._reading("measure_false_hits"):
                 return self._query_batch(queries_batch, 0).counts
 
-        result = health.measure_false_hits(report, stats.per_bit_usage() if source == "usage" else None, count_hits, queries, source=source, seed=seed,
-                                           batch=batch)
+        usage = stats.per_bit_usage() if source == "usage" else None
+        result = health.measure_false_hits(report, usage, count_hits, queries, source=source, seed=seed, batch=batch)
         self._measurement = result
         return result
 

@@ -16,6 +16,7 @@ import numpy as np
 from .. import validation
 from .._numba import kernels
 from .._numba.config import PARALLEL_LOCK
+from ..health import summed_counts
 from ..codes import (PACKED_MAX_BITS, Codes, adopt_csr, adopt_words, index_dtype, index_table, packed_table,
                      packed_words, row_table)
 
@@ -334,44 +335,56 @@ class UsageCounts:
 
     def __init__(self, bits: int, counted: bool = True, sparse: bool = False):
         self.bits, self.sparse = bits, sparse
-        self.used = np.zeros(0, dtype=np.int64) if sparse else None
-        self.usage = np.zeros(0 if sparse else bits, dtype=np.int64) if counted else None
-        self.weight_hist = np.zeros(1, dtype=np.int64) if counted else None
+        self.used, self.usage, self.weight_hist = self._empty() if counted else (self._empty()[0], None, None)
+
+    def _empty(self):
+        return (np.zeros(0, dtype=np.int64) if self.sparse else None,
+                np.zeros(0 if self.sparse else self.bits, dtype=np.int64), np.zeros(1, dtype=np.int64))
 
     @property
     def counted(self) -> bool:
         return self.usage is not None
 
     def count(self, table: RowTable) -> None:
-        self.used = np.zeros(0, dtype=np.int64) if self.sparse else None
-        self.usage = np.zeros(0 if self.sparse else self.bits, dtype=np.int64)
-        self.weight_hist = np.zeros(1, dtype=np.int64)
+        self.used, self.usage, self.weight_hist = self._empty()
         self.added(table.bit_usage(), table.weight_hist())
 
-    def added(self, usage: tuple, weight_hist: np.ndarray, sign: int = 1) -> None:
-        """Add (``sign`` -1: take away) ``usage`` = ``(bits, counts)`` of :meth:`RowTable.bit_usage` and a histogram."""
+    def after(self, usage: tuple, weight_hist: np.ndarray, sign: int = 1):
+        """The counts once ``usage`` = ``(bits, counts)`` of :meth:`RowTable.bit_usage` and a histogram are added
+        (``sign`` -1: taken away), as new arrays for :meth:`adopt`; None while uncounted.
+
+        A writer computes them before it takes the write lock (for a wide
+        store the merge is O(bits in use)) and adopts them under it.
+        """
         if not self.counted:
-            return
+            return None
         bits, counts = usage
         if not self.sparse:
             if bits is None:
-                self.usage = self.usage + sign * counts
+                dense = self.usage + sign * counts
             else:
-                self.usage = self.usage.copy()
-                self.usage[bits] += sign * counts
-        else:
-            if bits is None:
-                bits = np.flatnonzero(counts)
-                counts = counts[bits]
-            merged = bits if np.array_equal(bits, self.used) else np.union1d(self.used, bits)
-            out = np.zeros(merged.shape[0], dtype=np.int64)
-            out[np.searchsorted(merged, self.used)] = self.usage
-            out[np.searchsorted(merged, bits)] += sign * counts
-            self.used, self.usage = merged.astype(np.int64), out
-        self.weight_hist = _padded_sum(self.weight_hist, sign * weight_hist)
+                dense = self.usage.copy()
+                dense[bits] += sign * counts
+            return None, dense, summed_counts([self.weight_hist, sign * weight_hist])
+        if bits is None:
+            bits = np.flatnonzero(counts)
+            counts = counts[bits]
+        merged = bits if np.array_equal(bits, self.used) else np.union1d(self.used, bits)
+        out = np.zeros(merged.shape[0], dtype=np.int64)
+        out[np.searchsorted(merged, self.used)] = self.usage
+        out[np.searchsorted(merged, bits)] += sign * counts
+        return merged.astype(np.int64), out, summed_counts([self.weight_hist, sign * weight_hist])
+
+    def adopt(self, state) -> None:
+        """Swap in what :meth:`after` computed (None: nothing to do); cannot fail."""
+        if state is not None:
+            self.used, self.usage, self.weight_hist = state
+
+    def added(self, usage: tuple, weight_hist: np.ndarray) -> None:
+        self.adopt(self.after(usage, weight_hist))
 
     def removed(self, usage: tuple, weight_hist: np.ndarray) -> None:
-        self.added(usage, weight_hist, sign=-1)
+        self.adopt(self.after(usage, weight_hist, sign=-1))
 
     def check(self, table: RowTable) -> None:
         if not self.counted:
@@ -388,14 +401,6 @@ class UsageCounts:
             assert np.array_equal(self.usage, np.bincount(bits, minlength=self.bits)), "bit usage stale"
         hist = np.trim_zeros(self.weight_hist, "b")
         assert np.array_equal(hist, np.trim_zeros(table.weight_hist(), "b")), "weight histogram stale"
-
-
-def _padded_sum(a: np.ndarray, b: np.ndarray) -> np.ndarray:
-    """``a + b`` with the shorter zero-padded to the longer's length."""
-    out = np.zeros(max(a.shape[0], b.shape[0]), dtype=np.int64)
-    out[: a.shape[0]] += a
-    out[: b.shape[0]] += b
-    return out
 
 
 def _room(need: int, current: int) -> int:

@@ -223,19 +223,20 @@ class Store(StoreBase):
         # prepare everything where no query looks, then commit under the write lock
         rows = self._table.prepare_append(batch, ids, adopt=True)
         pending = self._bank.prepare_append(row_table(batch), ids, batch.weights)
+        counts = self._counts.after(pending.usage, pending.weight_hist)
         with self._guard.writing():
             self._bank.commit_append(pending)
             self._table.commit(rows)
-            self._counts.added(pending.usage, pending.weight_hist)
+            self._counts.adopt(counts)
 
     def _remove(self, ids: np.ndarray) -> None:
         rows = self._table.rows_of(ids)[0]
+        counts = None
         if self._counts.counted:
-            usage, weights = self._table.bit_usage(rows), self._table.weight_hist(rows)
+            counts = self._counts.after(self._table.bit_usage(rows), self._table.weight_hist(rows), sign=-1)
         with self._guard.writing():
             self._table.mark_removed(rows)
-            if self._counts.counted:
-                self._counts.removed(usage, weights)
+            self._counts.adopt(counts)
 
     def _live_mask(self, ids: np.ndarray) -> np.ndarray:
         return self._table.rows_of(ids)[1]
